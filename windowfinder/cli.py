@@ -1,0 +1,158 @@
+"""Command line: ``windowfinder VERB STUDY_DIR [options]``, a thin shell over :class:`Study`.
+
+Exit codes: 0 success, 2 bad input (one line on stderr, nothing written), 1 internal error.
+Results go to files under ``STUDY_DIR/out``; a short summary goes to stdout, progress to stderr.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+from pathlib import Path
+
+from .errors import InputError
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line + exit 2, like every other bad input
+        raise InputError(f"{self.prog}: {message} (see --help)")
+
+
+def _out(study, name: str) -> Path:
+    study.out.mkdir(parents=True, exist_ok=True)
+    return study.out / name
+
+
+def _load(args):
+    from .study import Study
+
+    return Study.load(args.study_dir)
+
+
+def _warn(lines):
+    for w in lines:
+        print(f"warning: {w}", file=sys.stderr)
+
+
+# -- verbs -----------------------------------------------------------------------------------------
+def cmd_new(args):
+    from .study import create_study
+
+    path = create_study(args.study_dir, example=args.example, name=args.name)
+    print(f"created {path}")
+    print("next: edit the factors and responses, then 'windowfinder design "
+          f"{args.study_dir} --method space-filling --runs 12'")
+
+
+def cmd_check(args):
+    study = _load(args)
+    spec, runs = study.spec, study.runs
+    _warn(runs.warnings)
+    st = runs.status.value_counts()
+    print(f"study: {spec.name}  ({study.dir / 'study.toml'})")
+    print(f"factors ({spec.d}): " + ", ".join(
+        f"{f.name} [{f.low:g}, {f.high:g}] {f.unit}".rstrip() for f in spec.factors))
+    for r in spec.responses:
+        tag = " (safety)" if r.is_safety else ""
+        print(f"response {r.name}: goal {r.goal}, limit {r.limit_text()}{tag}")
+    print(f"runs: {len(runs)} in {runs.path.name if runs.path else 'runs.csv'} — "
+          + ", ".join(f"{k} {st.get(k, 0)}" for k in ("done", "failed", "planned")))
+    print("ok: study file and run table are valid")
+
+
+def cmd_design(args):
+    study = _load(args)
+    frame = study.design(args.method, runs=args.runs, centre=args.centre, seed=args.seed)
+    path = _out(study, "design.csv")
+    from .runs import format_rows, write_atomic
+
+    header = list(frame.columns)
+    write_atomic(path, ",".join(header) + "\n" + format_rows(frame, header))
+    study.add_runs(frame)
+    print(f"{len(frame)} planned runs ({args.method}) appended to {study.runs_path}; copy in {path}")
+    print(frame[["run", *study.spec.factor_names]].to_string(index=False))
+
+
+def cmd_fit(args):
+    study = _load(args)
+    print(f"fitting {len(study.spec.responses)} models on {len(study.runs.completed())} runs ...",
+          file=sys.stderr)
+    res = study.fit(kind=args.model, n_restarts=args.restarts)
+    _warn(res.warnings)
+    path = _out(study, "fit.json")
+    from .runs import write_atomic
+
+    write_atomic(path, json.dumps(res.to_dict(), indent=2, allow_nan=False) + "\n")
+    print(format_diagnostics(res, study.spec))
+    print(f"diagnostics written to {path}")
+
+
+def format_diagnostics(res, spec) -> str:
+    """Plain-text diagnostics table: one line per response."""
+    lines = [f"{'response':<16} {'model':<9} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>12} {'cover95':>8}  "
+             "length scales (factor units)"]
+    for d in res.diagnostics:
+        unit = spec.response(d.response).unit
+        ls = ", ".join(f"{k}={v:.3g}" for k, v in d.length_scales.items()) or "-"
+        lines.append(f"{d.response:<16} {d.model:<9} {d.n:>3} {d.loo_q2:>7.2f} "
+                     f"{d.loo_rmse:>8.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
+    return "\n".join(lines)
+
+
+# -- parser ----------------------------------------------------------------------------------------
+def build_parser() -> argparse.ArgumentParser:
+    from .designs import METHODS
+
+    p = _Parser(prog="windowfinder",
+                description="Process windows with stated confidence from few, expensive runs.")
+    sub = p.add_subparsers(dest="verb", required=True, parser_class=_Parser, metavar="VERB")
+
+    def verb(name, fn, help_):
+        s = sub.add_parser(name, help=help_, description=help_)
+        s.add_argument("study_dir", metavar="STUDY_DIR", help="folder holding study.toml and runs.csv")
+        s.set_defaults(fn=fn)
+        return s
+
+    s = verb("new", cmd_new, "create a study folder from a template or a bundled example")
+    s.add_argument("--example", help="copy a bundled example case (reactor, spotweld, ...)")
+    s.add_argument("--name", help="study name for the template")
+    verb("check", cmd_check, "validate study.toml and runs.csv and summarise them")
+    s = verb("design", cmd_design, "append an initial design of planned runs to runs.csv")
+    s.add_argument("--method", default="space-filling", choices=METHODS)
+    s.add_argument("--runs", type=int, help="number of runs (space-filling, sobol)")
+    s.add_argument("--centre", type=int, default=0, help="extra replicated centre runs")
+    s.add_argument("--seed", type=int, help="random seed (default: the study's)")
+    s = verb("fit", cmd_fit, "fit one model per response and print leave-one-out diagnostics")
+    s.add_argument("--model", default="gp", choices=("gp", "quadratic"))
+    s.add_argument("--restarts", type=int, default=5, help="optimizer restarts for the GP")
+    for extra in _EXTRA_VERBS:
+        extra(verb)
+    return p
+
+
+_EXTRA_VERBS: list = []  # later steps register their verbs here (window, tradeoff, ...)
+
+
+def main(argv=None) -> int:
+    try:
+        args = build_parser().parse_args(argv)
+        args.fn(args)
+        return 0
+    except InputError as e:
+        print(f"windowfinder: {e}", file=sys.stderr)
+        return InputError.exit_code
+    except KeyboardInterrupt:
+        print("windowfinder: interrupted", file=sys.stderr)
+        return 130
+    except Exception as e:  # internal error: one line unless debugging
+        if os.environ.get("WINDOWFINDER_DEBUG"):
+            raise
+        print(f"windowfinder: internal error: {type(e).__name__}: {e} "
+              "(set WINDOWFINDER_DEBUG=1 for details)", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

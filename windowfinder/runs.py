@@ -1,0 +1,299 @@
+"""The run table (runs.csv): one row per run, validated against the study.
+
+Columns: ``run`` (unique id), one per factor, one per response, optional ``status``
+(``done`` | ``planned`` | ``failed``) and optional ``note``. Units live in study.toml. Empty response
+cells on a ``done`` run mean "not measured"; a ``failed`` run gave no usable product and feeds the
+failure model. Every problem is refused with one line naming the file, the row (line number and run id)
+and the column. The file is only ever appended to or rewritten atomically (temporary file, fsync, rename):
+a command that fails leaves it byte-identical.
+"""
+
+from __future__ import annotations
+
+import csv
+import difflib
+import io
+import math
+import os
+import re
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .spec import StudySpec
+
+STATUSES = ("done", "planned", "failed")
+_FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
+
+
+def safe_cell(v) -> str:
+    """Text for a CSV/XLSX cell, neutralised against spreadsheet formula injection.
+
+    A text cell starting with = + - @ (or a tab / carriage return) is prefixed with an apostrophe, as
+    recommended by the OWASP "CSV Injection" guidance; numbers are written as numbers.
+    """
+    if v is None or (isinstance(v, float) and math.isnan(v)):
+        return ""
+    if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool):
+        f = float(v)
+        return str(int(f)) if f.is_integer() and abs(f) < 1e15 else repr(f)
+    s = str(v)
+    return "'" + s if s.startswith(_FORMULA_START) else s
+
+
+@dataclass
+class RunTable:
+    """Validated runs of one study (natural units), plus the warnings found while reading."""
+
+    frame: pd.DataFrame
+    spec: StudySpec
+    path: Path | None = None
+    warnings: list[str] = field(default_factory=list)
+
+    @property
+    def status(self) -> pd.Series:
+        return self.frame["status"]
+
+    def done(self) -> pd.DataFrame:
+        return self.frame[self.status == "done"]
+
+    def failed(self) -> pd.DataFrame:
+        return self.frame[self.status == "failed"]
+
+    def planned(self) -> pd.DataFrame:
+        return self.frame[self.status == "planned"]
+
+    def completed(self) -> pd.DataFrame:
+        """Runs that carry information: done and failed."""
+        return self.frame[self.status.isin(["done", "failed"])]
+
+    def X(self, frame: pd.DataFrame | None = None) -> np.ndarray:
+        frame = self.frame if frame is None else frame
+        return frame[self.spec.factor_names].to_numpy(dtype=float)
+
+    def X_coded(self, frame: pd.DataFrame | None = None) -> np.ndarray:
+        return self.spec.to_coded(self.X(frame)).reshape(-1, self.spec.d)
+
+    def outside(self) -> pd.Series:
+        """Runs whose settings lie outside the study bounds (kept; flagged as extrapolation)."""
+        U = self.X_coded()
+        out = ((U < -1e-9) | (U > 1 + 1e-9)).any(axis=1)
+        return pd.Series(out, index=self.frame.index)
+
+    def to_frame(self) -> pd.DataFrame:
+        return self.frame.copy()
+
+    def __len__(self) -> int:
+        return len(self.frame)
+
+
+def empty_table(spec: StudySpec) -> pd.DataFrame:
+    cols = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    df = pd.DataFrame({c: pd.Series(dtype=float) for c in cols})
+    df["run"] = df["run"].astype(str)
+    df["status"] = df["status"].astype(str)
+    df["note"] = df["note"].astype(str)
+    return df
+
+
+def _read_text(path: Path) -> str:
+    data = path.read_bytes()
+    if b"\x00" in data:
+        raise InputError(f"{path}: binary file, not a CSV table; export the runs as CSV (UTF-8)")
+    try:
+        return data.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        raise InputError(f"{path}: not UTF-8 text; save the table as CSV UTF-8") from None
+
+
+def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
+    """Header, rows of text cells, and each row's line number in the file."""
+    if path.suffix.lower() in (".xlsx", ".xlsm"):
+        try:
+            import openpyxl  # noqa: F401
+        except ImportError:
+            raise InputError(f"{path}: reading .xlsx needs openpyxl; pip install 'windowfinder[xlsx]' "
+                             "or save the sheet as CSV") from None
+        try:
+            df = pd.read_excel(path, dtype=str, keep_default_na=False, engine="openpyxl")
+        except Exception as e:  # openpyxl raises many types for a damaged file
+            raise InputError(f"{path}: cannot read the workbook ({type(e).__name__}); "
+                             "save it again or export CSV") from None
+        header = [str(c) for c in df.columns]
+        rows = [[str(v) for v in r] for r in df.itertuples(index=False)]
+        return header, rows, list(range(2, len(rows) + 2))
+    text = _read_text(path)
+    if not text.strip():
+        raise InputError(f"{path}: empty file; it needs a header line: run, factor and response columns")
+    try:
+        reader = csv.reader(io.StringIO(text))
+        lines = []
+        for rec in reader:
+            lines.append((reader.line_num, rec))
+    except csv.Error as e:
+        raise InputError(f"{path}: malformed CSV ({e}); check quotes") from None
+    lines = [(n, r) for n, r in lines if any(c.strip() for c in r)]
+    header = [c.strip() for c in lines[0][1]]
+    if len(header) == 1 and ";" in header[0]:
+        raise InputError(f"{path}: the columns are separated by ';'; save the file comma-separated "
+                         "(with '.' as decimal point)")
+    return header, [r for _, r in lines[1:]], [n for n, _ in lines[1:]]
+
+
+def _number(cell: str, where: str, column: str, allow_blank: bool) -> float:
+    s = cell.strip()
+    if s == "":
+        if allow_blank:
+            return math.nan
+        raise InputError(f"{where}: '{column}' is empty; every run needs all factor settings")
+    try:
+        v = float(s)
+    except ValueError:
+        hint = " (decimal comma? use '.')" if re.fullmatch(r"-?\d+,\d+", s) else ""
+        raise InputError(f"{where}: '{column}' = '{s}' is not a number{hint}; fix the cell") from None
+    if not math.isfinite(v):
+        raise InputError(f"{where}: '{column}' = '{s}' is not finite; enter a measured value or leave "
+                         "it blank")
+    return v
+
+
+def read_runs(path, spec: StudySpec) -> RunTable:
+    """Read and validate a run table (CSV, or XLSX when openpyxl is installed)."""
+    path = Path(path)
+    if not path.exists():
+        return RunTable(empty_table(spec), spec, path)
+    header, rows, line_nos = _raw_rows(path)
+    name = path.name
+    if len(set(header)) != len(header):
+        dup = next(c for c in header if header.count(c) > 1)
+        raise InputError(f"{name}: column '{dup}' appears twice; keep one")
+    known = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    for c in header:
+        if c not in known:
+            close = difflib.get_close_matches(c, known, n=1, cutoff=0.5)
+            hint = f"did you mean '{close[0]}'?" if close else "allowed: " + ", ".join(known)
+            raise InputError(f"{name}: unknown column '{c}'; {hint} (put remarks in 'note')")
+    for c in ["run", *spec.factor_names]:
+        if c not in header:
+            raise InputError(f"{name}: missing column '{c}'; the table needs run, "
+                             + ", ".join(spec.factor_names) + " and response columns")
+    col = {c: i for i, c in enumerate(header)}
+    records, seen, warnings = [], {}, []
+    for cells, line in zip(rows, line_nos):
+        cells = cells + [""] * (len(header) - len(cells))
+        if len(cells) > len(header):
+            raise InputError(f"{name} line {line}: {len(cells)} cells but {len(header)} columns; "
+                             "check for stray commas or a decimal comma")
+        run = cells[col["run"]].strip()
+        where = f"{name} line {line} (run {run or '?'})"
+        if not run:
+            raise InputError(f"{name} line {line}: empty run id; give every run a unique id")
+        if run in seen:
+            raise InputError(f"{where}: duplicate run id '{run}' (also on line {seen[run]}); "
+                             "make ids unique")
+        seen[run] = line
+        status = cells[col["status"]].strip().lower() if "status" in col else ""
+        status = status or "done"
+        if status not in STATUSES:
+            raise InputError(f"{where}: status '{status}' unknown; use done, planned or failed")
+        rec = {"run": run, "status": status,
+               "note": cells[col["note"]].strip() if "note" in col else ""}
+        for f in spec.factor_names:
+            rec[f] = _number(cells[col[f]], where, f, allow_blank=False)
+        for r in spec.response_names:
+            rec[r] = _number(cells[col[r]], where, r, allow_blank=True) if r in col else math.nan
+        records.append(rec)
+    frame = pd.DataFrame.from_records(records, columns=known)
+    if frame.empty:
+        frame = empty_table(spec)
+    table = RunTable(frame, spec, path, warnings)
+    out = table.outside()
+    if out.any():
+        ids = ", ".join(frame.loc[out, "run"].astype(str).tolist()[:10])
+        warnings.append(f"{name}: runs outside the study bounds (kept, treated as extrapolation): {ids}")
+    for r in spec.responses:
+        if r.transform != "none":
+            done = frame[frame["status"] == "done"][r.name].dropna()
+            lo, hi = r.bounds if r.bounds else (0.0, math.inf)
+            strict = done[(done <= lo) | (done >= hi)] if r.transform == "logit" else done[done <= lo]
+            if len(strict):
+                i = strict.index[0]
+                raise InputError(f"{name} (run {frame.loc[i, 'run']}): '{r.name}' = {strict.iloc[0]:g} "
+                                 f"is not allowed by transform = '{r.transform}'; check the value or "
+                                 "the bounds in study.toml")
+    return table
+
+
+def format_rows(frame: pd.DataFrame, header: list[str]) -> str:
+    """CSV text (no header) of ``frame`` in ``header`` order, cells neutralised."""
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    for rec in frame.to_dict("records"):
+        w.writerow([safe_cell(rec.get(c)) for c in header])
+    return buf.getvalue()
+
+
+def write_atomic(path, text: str) -> None:
+    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename."""
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
+        raise
+    try:  # make the rename itself durable
+        dfd = os.open(path.parent, os.O_RDONLY)
+        try:
+            os.fsync(dfd)
+        finally:
+            os.close(dfd)
+    except OSError:
+        pass
+
+
+def next_ids(existing, k: int, prefix: str = "R") -> list[str]:
+    """``k`` new run ids ``R001``... continuing after the largest numbered id in ``existing``."""
+    nums = [int(m.group(1)) for e in existing if (m := re.fullmatch(rf"{prefix}(\d+)", str(e)))]
+    start = max(nums, default=0) + 1
+    width = max(3, len(str(start + k)))
+    return [f"{prefix}{i:0{width}d}" for i in range(start, start + k)]
+
+
+def append_runs(path, spec: StudySpec, new: pd.DataFrame) -> None:
+    """Append rows to the run table, creating it when absent; the old bytes are kept verbatim."""
+    path = Path(path)
+    if path.suffix.lower() != ".csv":
+        raise InputError(f"{path.name}: windowfinder only appends to a CSV run table; save it as runs.csv")
+    if path.exists():
+        old = _read_text(path)
+        header, _, _ = _raw_rows(path)
+        missing = [c for c in new.columns if c not in header and new[c].notna().any()
+                   and (new[c].astype(str) != "").any()]
+        if missing:  # widen the table: rewrite it whole with the new columns
+            table = read_runs(path, spec)
+            frame = pd.concat([table.frame, new], ignore_index=True)
+            write_runs(path, spec, frame)
+            return
+        if old and not old.endswith("\n"):
+            old += "\n"
+        write_atomic(path, old + format_rows(new, header))
+    else:
+        write_runs(path, spec, new)
+
+
+def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
+    """Rewrite the whole run table atomically (standard column order)."""
+    header = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    text = ",".join(header) + "\n" + format_rows(frame, header)
+    write_atomic(path, text)

@@ -1,0 +1,350 @@
+"""The study file (study.toml): factors, responses, limits and goals.
+
+Parsed with :mod:`tomllib` into frozen dataclasses and validated strictly: an unknown key, a missing name,
+``low >= high`` and the like raise :class:`~windowfinder.errors.InputError` with one line that names the
+file and the key, so a typo never passes silently. Settings are converted between natural units and coded
+units (``[0, 1]`` per factor), in which every model and search works.
+"""
+
+from __future__ import annotations
+
+import difflib
+import math
+import tomllib
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+
+from .errors import InputError
+
+GOALS = ("maximize", "minimize", "target", "none")
+KINDS = ("quality", "safety")
+TRANSFORMS = ("none", "log", "logit")
+RESERVED = ("run", "status", "note")
+
+STUDY_KEYS = ("name", "confidence", "seed", "description")
+FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
+RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds")
+TOP_KEYS = ("study", "factor", "response")
+
+
+def _nearest(key: str, valid) -> str:
+    close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+    if close:
+        return f"did you mean '{close[0]}'?"
+    return "valid keys: " + ", ".join(valid)
+
+
+@dataclass(frozen=True)
+class Factor:
+    """One setting the engineer controls, with its hard bounds in natural units."""
+
+    name: str
+    low: float
+    high: float
+    unit: str = ""
+    step: float | None = None
+    tolerance: float = 0.0
+
+    @property
+    def span(self) -> float:
+        return self.high - self.low
+
+    def to_coded(self, x):
+        return (np.asarray(x, dtype=float) - self.low) / self.span
+
+    def to_natural(self, u):
+        return self.low + np.asarray(u, dtype=float) * self.span
+
+    def round(self, x):
+        """Round natural settings to multiples of ``step`` that lie inside the bounds."""
+        x = np.asarray(x, dtype=float)
+        if not self.step:
+            return np.clip(x, self.low, self.high)
+        r = np.round(x / self.step) * self.step
+        lo = math.ceil(self.low / self.step - 1e-9) * self.step
+        hi = math.floor(self.high / self.step + 1e-9) * self.step
+        if lo > hi:  # no multiple of step inside the bounds: keep the bounds
+            return np.clip(x, self.low, self.high)
+        # round away float noise of the multiplication
+        return np.round(np.clip(r, lo, hi), 10)
+
+
+@dataclass(frozen=True)
+class Response:
+    """One measured result, with optional limits (``min``/``max``) and a goal."""
+
+    name: str
+    unit: str = ""
+    goal: str = "none"
+    min: float | None = None
+    max: float | None = None
+    target: float | None = None
+    kind: str = "quality"
+    transform: str = "none"
+    bounds: tuple[float, float] | None = None
+
+    @property
+    def has_limits(self) -> bool:
+        return self.min is not None or self.max is not None
+
+    @property
+    def is_safety(self) -> bool:
+        return self.kind == "safety"
+
+    def margin(self, y):
+        """Smallest limit margin, ``y - min`` or ``max - y``; a limit is met when it is >= 0."""
+        y = np.asarray(y, dtype=float)
+        m = np.full(y.shape, np.inf)
+        if self.min is not None:
+            m = np.minimum(m, y - self.min)
+        if self.max is not None:
+            m = np.minimum(m, self.max - y)
+        return m
+
+    def limit_text(self) -> str:
+        u = f" {self.unit}" if self.unit else ""
+        if self.min is not None and self.max is not None:
+            return f"{self.min:g} to {self.max:g}{u}"
+        if self.min is not None:
+            return f">= {self.min:g}{u}"
+        if self.max is not None:
+            return f"<= {self.max:g}{u}"
+        return "no limit"
+
+
+@dataclass(frozen=True)
+class StudySpec:
+    """Everything the study file says: name, confidence, seed, factors and responses."""
+
+    name: str
+    factors: tuple[Factor, ...]
+    responses: tuple[Response, ...]
+    confidence: float = 0.95
+    seed: int = 0
+    description: str = ""
+    source: str = "study.toml"
+
+    # -- names and sizes -------------------------------------------------------------------------
+    @property
+    def d(self) -> int:
+        return len(self.factors)
+
+    @property
+    def factor_names(self) -> list[str]:
+        return [f.name for f in self.factors]
+
+    @property
+    def response_names(self) -> list[str]:
+        return [r.name for r in self.responses]
+
+    @property
+    def limited(self) -> list[Response]:
+        """Responses with at least one limit, safety limits first."""
+        lim = [r for r in self.responses if r.has_limits]
+        return sorted(lim, key=lambda r: not r.is_safety)
+
+    @property
+    def goals(self) -> list[Response]:
+        return [r for r in self.responses if r.goal != "none"]
+
+    @property
+    def has_safety(self) -> bool:
+        return any(r.is_safety for r in self.responses)
+
+    def factor(self, name: str) -> Factor:
+        for f in self.factors:
+            if f.name == name:
+                return f
+        raise InputError(f"{self.source}: no factor named '{name}'; factors are "
+                         + ", ".join(self.factor_names))
+
+    def response(self, name: str) -> Response:
+        for r in self.responses:
+            if r.name == name:
+                return r
+        raise InputError(f"{self.source}: no response named '{name}'; responses are "
+                         + ", ".join(self.response_names))
+
+    # -- units -----------------------------------------------------------------------------------
+    @property
+    def lows(self) -> np.ndarray:
+        return np.array([f.low for f in self.factors])
+
+    @property
+    def spans(self) -> np.ndarray:
+        return np.array([f.span for f in self.factors])
+
+    @property
+    def tolerances_coded(self) -> np.ndarray:
+        return np.array([f.tolerance / f.span for f in self.factors])
+
+    def to_coded(self, X) -> np.ndarray:
+        X = np.atleast_2d(np.asarray(X, dtype=float))
+        return (X - self.lows) / self.spans
+
+    def to_natural(self, U) -> np.ndarray:
+        U = np.atleast_2d(np.asarray(U, dtype=float))
+        return self.lows + U * self.spans
+
+    def round_to_step(self, X) -> np.ndarray:
+        X = np.atleast_2d(np.asarray(X, dtype=float))
+        return np.column_stack([f.round(X[:, j]) for j, f in enumerate(self.factors)])
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    # -- parsing ---------------------------------------------------------------------------------
+    @classmethod
+    def from_toml(cls, path) -> "StudySpec":
+        path = Path(path)
+        if not path.exists():
+            raise InputError(f"{path}: study file not found; create one with 'windowfinder new DIR'")
+        try:
+            raw = path.read_bytes().decode("utf-8-sig")
+        except UnicodeDecodeError:
+            raise InputError(f"{path}: not UTF-8 text; save the study file as UTF-8") from None
+        try:
+            data = tomllib.loads(raw)
+        except tomllib.TOMLDecodeError as e:
+            raise InputError(f"{path}: invalid TOML ({e}); fix the line named") from None
+        return cls.from_dict(data, source=str(path))
+
+    @classmethod
+    def from_dict(cls, data: dict, source: str = "study.toml") -> "StudySpec":
+        return _Parser(source).study(data)
+
+
+@dataclass
+class _Parser:
+    source: str
+    names: set = field(default_factory=set)
+
+    def fail(self, where: str, what: str):
+        raise InputError(f"{self.source}: {where}: {what}")
+
+    @staticmethod
+    def where(kind: str, t, i: int) -> str:
+        n = t.get("name") if isinstance(t, dict) else None
+        return f"[[{kind}]] '{n}'" if isinstance(n, str) and n.strip() else f"[[{kind}]] #{i}"
+
+    def keys(self, table: dict, valid, where: str):
+        if not isinstance(table, dict):
+            self.fail(where, "expected a table of keys")
+        for k in table:
+            if k not in valid:
+                self.fail(where, f"unknown key '{k}'; {_nearest(k, valid)}")
+
+    def number(self, table, key, where, default=None, required=False):
+        if key not in table:
+            if required:
+                self.fail(where, f"missing key '{key}'; add {key} = <number>")
+            return default
+        v = table[key]
+        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
+            self.fail(where, f"'{key}' must be a finite number, got {v!r}")
+        return float(v)
+
+    def text(self, table, key, where, default="", choices=None):
+        v = table.get(key, default)
+        if not isinstance(v, str):
+            self.fail(where, f"'{key}' must be text in quotes, got {v!r}")
+        if choices is not None and v not in choices:
+            self.fail(where, f"'{key}' = '{v}' is not one of {', '.join(choices)}; "
+                      + _nearest(v, choices).replace("valid keys", "choose from"))
+        return v
+
+    def name(self, table, where):
+        if "name" not in table:
+            self.fail(where, "missing key 'name'; every factor and response needs a name")
+        n = self.text(table, "name", where).strip()
+        if not n:
+            self.fail(where, "'name' is empty")
+        if n.lower() in RESERVED:
+            self.fail(where, f"name '{n}' is reserved for a run-table column; choose another")
+        if n in self.names:
+            self.fail(where, f"duplicate name '{n}'; factor and response names must be unique")
+        self.names.add(n)
+        return n
+
+    def study(self, data: dict) -> StudySpec:
+        self.keys(data, TOP_KEYS, "top level")
+        st = data.get("study", {})
+        self.keys(st, STUDY_KEYS, "[study]")
+        conf = self.number(st, "confidence", "[study]", default=0.95)
+        if not 0.0 < conf < 1.0:
+            self.fail("[study]", f"confidence = {conf:g} must lie strictly between 0 and 1, e.g. 0.95")
+        seed = st.get("seed", 0)
+        if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
+            self.fail("[study]", f"seed = {seed!r} must be a whole number >= 0")
+        factors = data.get("factor", [])
+        responses = data.get("response", [])
+        if not isinstance(factors, list) or not factors:
+            self.fail("[[factor]]", "no factors; add at least one [[factor]] table")
+        if not isinstance(responses, list) or not responses:
+            self.fail("[[response]]", "no responses; add at least one [[response]] table")
+        fs = tuple(self.factor(t, i + 1) for i, t in enumerate(factors))
+        rs = tuple(self.response(t, i + 1) for i, t in enumerate(responses))
+        return StudySpec(name=self.text(st, "name", "[study]", default="unnamed study"),
+                         description=self.text(st, "description", "[study]"),
+                         confidence=conf, seed=seed, factors=fs, responses=rs, source=self.source)
+
+    def factor(self, t, i) -> Factor:
+        where = self.where("factor", t, i)
+        self.keys(t, FACTOR_KEYS, where)
+        name = self.name(t, where)
+        low = self.number(t, "low", where, required=True)
+        high = self.number(t, "high", where, required=True)
+        if low >= high:
+            self.fail(where, f"low = {low:g} must be below high = {high:g}")
+        step = self.number(t, "step", where)
+        if step is not None and not 0 < step <= high - low:
+            self.fail(where, f"step = {step:g} must be > 0 and no larger than high - low")
+        tol = self.number(t, "tolerance", where, default=0.0)
+        if not 0 <= tol < (high - low) / 2:
+            self.fail(where, f"tolerance = {tol:g} must be >= 0 and below half the range")
+        return Factor(name=name, low=low, high=high, unit=self.text(t, "unit", where),
+                      step=step, tolerance=tol)
+
+    def response(self, t, i) -> Response:
+        where = self.where("response", t, i)
+        self.keys(t, RESPONSE_KEYS, where)
+        name = self.name(t, where)
+        goal = self.text(t, "goal", where, default="none", choices=GOALS)
+        lo = self.number(t, "min", where)
+        hi = self.number(t, "max", where)
+        target = self.number(t, "target", where)
+        if lo is not None and hi is not None and lo >= hi:
+            self.fail(where, f"min = {lo:g} must be below max = {hi:g}")
+        if goal == "none" and lo is None and hi is None:
+            self.fail(where, "goal = 'none' and no limit: give a goal, a min or a max, or drop it")
+        if goal == "target" and target is None:
+            self.fail(where, "goal = 'target' needs target = <value>")
+        if goal != "target" and target is not None:
+            self.fail(where, f"target given but goal = '{goal}'; set goal = 'target' or drop target")
+        kind = self.text(t, "kind", where, default="quality", choices=KINDS)
+        transform = self.text(t, "transform", where, default="none", choices=TRANSFORMS)
+        bounds = t.get("bounds")
+        if bounds is not None:
+            ok = (isinstance(bounds, list) and len(bounds) == 2
+                  and all(isinstance(b, (int, float)) and not isinstance(b, bool)
+                          and math.isfinite(b) for b in bounds) and bounds[0] < bounds[1])
+            if not ok:
+                self.fail(where, f"bounds = {bounds!r} must be [lower, upper] with lower < upper")
+            bounds = (float(bounds[0]), float(bounds[1]))
+        if transform == "logit" and bounds is None:
+            self.fail(where, "transform = 'logit' needs the physical bounds, e.g. bounds = [0, 100]")
+        if transform == "log":
+            floor = bounds[0] if bounds else 0.0
+            for key, v in (("min", lo), ("max", hi), ("target", target)):
+                if v is not None and v <= floor:
+                    self.fail(where, f"transform = 'log' needs {key} > {floor:g}")
+        if bounds is not None:
+            for key, v in (("min", lo), ("max", hi), ("target", target)):
+                if v is not None and not bounds[0] <= v <= bounds[1]:
+                    self.fail(where, f"{key} = {v:g} lies outside bounds {list(bounds)}")
+        if target is not None and ((lo is not None and target < lo) or (hi is not None and target > hi)):
+            self.fail(where, f"target = {target:g} lies outside the limits")
+        return Response(name=name, unit=self.text(t, "unit", where), goal=goal, min=lo, max=hi,
+                        target=target, kind=kind, transform=transform, bounds=bounds)

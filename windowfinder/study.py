@@ -1,0 +1,208 @@
+"""A study on disk: the study file plus its run table, and the steps an engineer takes with them.
+
+``Study`` is the Python API behind the command line: ``Study.load(dir)`` reads and validates
+``study.toml`` and ``runs.csv``; ``study.design(...)``, ``study.fit()`` and the later steps return
+dataclasses and DataFrames a notebook can use. It only orchestrates: the work is done by the modules
+below it in the data flow (designs, surrogate, diagnostics, feasibility, window, trade-off, ...).
+"""
+
+from __future__ import annotations
+
+import shutil
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from . import designs
+from .errors import InputError
+from .runs import RunTable, append_runs, next_ids, read_runs, write_atomic, write_runs
+from .spec import StudySpec
+
+STUDY_FILE = "study.toml"
+RUNS_FILE = "runs.csv"
+
+TEMPLATE = """\
+# windowfinder study file. Units live here, not in the run table's headers.
+[study]
+name = "{name}"
+confidence = 0.95     # confidence for windows and feasibility
+seed = 1              # same inputs + seed -> same outputs
+
+[[factor]]            # one table per setting you control; order = column order everywhere
+name = "temperature"
+unit = "degC"
+low = 40.0
+high = 90.0
+step = 0.5            # optional: settable resolution
+tolerance = 1.0       # optional: +- how tightly operations hold it
+
+[[factor]]
+name = "time"
+unit = "min"
+low = 30.0
+high = 180.0
+step = 5.0
+
+[[response]]          # one table per measured result
+name = "yield"
+unit = "%"
+goal = "maximize"     # maximize | minimize | target | none
+min = 80.0            # optional lower limit
+kind = "quality"      # quality | safety
+
+[[response]]
+name = "impurity"
+unit = "%"
+goal = "minimize"
+max = 2.0
+transform = "log"     # none | log | logit (logit needs bounds = [low, high])
+"""
+
+
+@dataclass
+class FitResult:
+    """Fitted models of a study and their leave-one-out diagnostics."""
+
+    surrogates: object
+    diagnostics: list = field(default_factory=list)
+    X_runs: np.ndarray | None = None
+    warnings: list[str] = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        return {"responses": [d.to_dict() for d in self.diagnostics], "warnings": self.warnings}
+
+    def to_frame(self) -> pd.DataFrame:
+        return pd.DataFrame([d.to_dict() for d in self.diagnostics])
+
+
+class Study:
+    """A study folder: ``study.toml`` + ``runs.csv`` (+ ``out/`` for results)."""
+
+    def __init__(self, directory, spec: StudySpec, runs: RunTable):
+        self.dir = Path(directory)
+        self.spec = spec
+        self.runs = runs
+
+    # -- files -----------------------------------------------------------------------------------
+    @classmethod
+    def load(cls, directory, runs_file: str | None = None) -> "Study":
+        directory = Path(directory)
+        if not directory.is_dir():
+            raise InputError(f"{directory}: no such study folder; create one with 'windowfinder new "
+                             f"{directory}'")
+        spec = StudySpec.from_toml(directory / STUDY_FILE)
+        if runs_file is None:
+            runs_path = directory / RUNS_FILE
+            if not runs_path.exists() and (directory / "runs.xlsx").exists():
+                runs_path = directory / "runs.xlsx"
+        else:
+            runs_path = directory / runs_file
+        return cls(directory, spec, read_runs(runs_path, spec))
+
+    @property
+    def runs_path(self) -> Path:
+        return self.runs.path or self.dir / RUNS_FILE
+
+    @property
+    def out(self) -> Path:
+        return self.dir / "out"
+
+    def reload(self) -> "Study":
+        return Study.load(self.dir, self.runs_path.name)
+
+    # -- designs ---------------------------------------------------------------------------------
+    def design(self, method: str, runs: int | None = None, centre: int = 0,
+               seed: int | None = None) -> pd.DataFrame:
+        """A new design in natural units, rounded to each step, in randomised run order."""
+        seed = self.spec.seed if seed is None else seed
+        U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
+        X = self.spec.round_to_step(self.spec.to_natural(U)) if method != "ccd-circumscribed" \
+            else self.spec.to_natural(U)
+        order = np.random.default_rng(seed).permutation(len(X))
+        X = X[order]
+        frame = pd.DataFrame(X, columns=self.spec.factor_names)
+        frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
+        for r in self.spec.response_names:
+            frame[r] = np.nan
+        frame["status"] = "planned"
+        frame["note"] = f"design {method}"
+        return frame
+
+    def add_runs(self, frame: pd.DataFrame) -> None:
+        """Append rows (e.g. a design or suggestions) to the run table atomically."""
+        append_runs(self.runs_path, self.spec, frame)
+        self.runs = read_runs(self.runs_path, self.spec)
+
+    def record_results(self, results: pd.DataFrame) -> None:
+        """Fill in measured results of existing runs (by run id) and rewrite the table atomically."""
+        frame = self.runs.frame.set_index("run")
+        res = results.set_index("run")
+        unknown = [r for r in res.index if r not in frame.index]
+        if unknown:
+            raise InputError(f"results name unknown run ids: {', '.join(map(str, unknown[:5]))}")
+        for c in res.columns:
+            if c in frame.columns:
+                frame.loc[res.index, c] = res[c]
+        write_runs(self.runs_path, self.spec, frame.reset_index())
+        self.runs = read_runs(self.runs_path, self.spec)
+
+    # -- models ----------------------------------------------------------------------------------
+    def training_data(self):
+        """Coded settings of completed runs, measured responses (NaN = not measured), works flags."""
+        comp = self.runs.completed()
+        X = self.runs.X_coded(comp)
+        works = (comp["status"] == "done").to_numpy()
+        Y = {r: np.where(works, comp[r].to_numpy(dtype=float), np.nan) for r in self.spec.response_names}
+        return X, Y, works
+
+    def fit(self, kind: str = "gp", n_restarts: int = 5) -> FitResult:
+        """Fit one model per response (and a failure model when runs failed); LOO diagnostics."""
+        from .diagnostics import diagnose
+        from .surrogate import Surrogates
+
+        X, Y, works = self.training_data()
+        for r in self.spec.responses:
+            n = int(np.isfinite(Y[r.name]).sum())
+            need = 3 if kind == "gp" else (self.spec.d + 1) * (self.spec.d + 2) // 2 + 1
+            if n < need:
+                raise InputError(f"{self.runs_path.name}: response '{r.name}' has {n} measured runs; "
+                                 f"fitting a {kind} model needs at least {need}; add runs first "
+                                 "(windowfinder design)")
+        transforms = {r.name: (r.transform, r.bounds) for r in self.spec.responses}
+        sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
+                                    kind=kind, n_restarts=n_restarts, seed=self.spec.seed)
+        diags = []
+        for r in self.spec.responses:
+            y = Y[r.name]
+            y = y[np.isfinite(y)]
+            diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
+                                  self.spec.spans))
+        warnings = list(self.runs.warnings)
+        for dg in diags:
+            warnings += [f"{dg.response}: {w}" for w in dg.warnings]
+        return FitResult(sur, diags, X, warnings)
+
+
+def create_study(directory, example: str | None = None, name: str | None = None) -> Path:
+    """Create a study folder from the template or a bundled example (never overwrites)."""
+    directory = Path(directory)
+    target = directory / STUDY_FILE
+    if target.exists():
+        raise InputError(f"{target}: already exists; choose a new folder (nothing was changed)")
+    if example is not None:
+        from . import cases
+
+        names = cases.list_cases()
+        if example not in names:
+            raise InputError(f"--example '{example}' unknown; bundled examples: {', '.join(names)}")
+        src = cases.case_dir(example)
+        directory.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(src / STUDY_FILE, target)
+        if (src / "README.md").exists():
+            shutil.copyfile(src / "README.md", directory / "README.md")
+        return target
+    directory.mkdir(parents=True, exist_ok=True)
+    write_atomic(target, TEMPLATE.format(name=(name or directory.name).replace('"', "'")))
+    return target
