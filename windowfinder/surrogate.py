@@ -1,0 +1,592 @@
+"""Per-response models: Gaussian process, quadratic response surface, failure model.
+
+Every model works on coded inputs ``X`` of shape ``(n, d)`` (``[0, 1]`` per factor; points outside,
+such as the axial runs of a central composite design, are accepted) and on responses in natural units.
+A monotone :class:`Transform` maps a response to the latent scale ``z = g(y)`` on which the model is
+Gaussian; ``predict`` returns latent mean and standard deviation, ``predict_interval`` returns natural
+units (inverse transform of latent quantiles, exact because ``g`` is monotone).
+"""
+
+from __future__ import annotations
+
+import copy
+import warnings
+
+import numpy as np
+from scipy import stats
+from scipy.linalg import cho_solve, solve_triangular
+from scipy.special import expit
+from sklearn.exceptions import ConvergenceWarning
+from sklearn.gaussian_process import GaussianProcessClassifier, GaussianProcessRegressor
+from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
+
+from windowfinder.errors import InputError
+
+# Hyperparameter bounds for 10-50 runs in the unit cube with standardised outputs
+# (common practice, no source):
+# - signal variance 1e-2..1e2 of the sample variance: the trend explains between almost none and
+#   far more than the observed spread;
+# - length scale 0.05..20 coded units: 0.05 is finer than the spacing tens of runs can resolve in the
+#   unit cube; at 20 the response is practically flat along that factor (factor inactive);
+# - noise variance 1e-6..1 of the sample variance: from near-interpolation to "all of it is noise".
+CONSTANT_BOUNDS = (1e-2, 1e2)
+LENGTH_SCALE_BOUNDS = (0.05, 20.0)
+NOISE_BOUNDS = (1e-6, 1.0)
+JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (scikit-learn default)
+
+TRANSFORM_KINDS = ("none", "log", "logit")
+
+
+class Transform:
+    """Monotone increasing output transform ``z = g(y)``.
+
+    Parameters
+    ----------
+    kind : {"none", "log", "logit"}
+        ``log``: ``z = log(y - a)`` with ``a = bounds[0]`` (0 when no bounds are given), needs ``y > a``.
+        ``logit``: ``z = log((y - a) / (b - y))``, needs ``bounds = (a, b)`` and ``a < y < b``.
+    bounds : (float, float) or None
+        Physical bounds of the response (natural units).
+    """
+
+    def __init__(self, kind="none", bounds=None):
+        if kind not in TRANSFORM_KINDS:
+            raise InputError(f"transform '{kind}' is unknown; use one of {', '.join(TRANSFORM_KINDS)}")
+        self.kind = kind
+        self.bounds = None if bounds is None else tuple(
+            float(v) if v is not None else (-np.inf, np.inf)[i] for i, v in enumerate(bounds))
+        if kind == "logit":
+            if (self.bounds is None or len(self.bounds) != 2 or not np.all(np.isfinite(self.bounds))
+                    or not self.bounds[0] < self.bounds[1]):
+                raise InputError(
+                    f"transform logit needs bounds = [low, high] with low < high, got {bounds}; "
+                    "give the physical bounds of the response (e.g. [0, 100] for a percentage)"
+                )
+        # domain (lower, upper) of the transform; "none" has no domain limits even with bounds given
+        self.lower = -np.inf if kind == "none" else (
+            self.bounds[0] if self.bounds and np.isfinite(self.bounds[0]) else 0.0)
+        self.upper = self.bounds[1] if kind == "logit" else np.inf
+
+    def __repr__(self):
+        return f"Transform(kind={self.kind!r}, bounds={self.bounds!r})"
+
+    def forward(self, y):
+        """Natural units to latent scale; values outside the open domain raise InputError."""
+        y = np.asarray(y, dtype=float)
+        if self.kind == "none":
+            return y.copy()
+        bad = ~((y > self.lower) & (y < self.upper))
+        if np.any(bad[np.isfinite(y)]):
+            v = y[bad & np.isfinite(y)].flat[0]
+            dom = f"({self.lower:g}, {self.upper:g})" if self.kind == "logit" else f"> {self.lower:g}"
+            raise InputError(
+                f"transform {self.kind}: value {v:g} is outside its domain {dom}; "
+                "check the value, widen the bounds or use transform = \"none\""
+            )
+        if self.kind == "log":
+            return np.log(y - self.lower)
+        return np.log(y - self.lower) - np.log(self.upper - y)
+
+    def inverse(self, z):
+        """Latent scale to natural units (``+-inf`` map to the bounds)."""
+        z = np.asarray(z, dtype=float)
+        if self.kind == "none":
+            return z.copy()
+        if self.kind == "log":
+            return self.lower + np.exp(z)
+        return self.lower + (self.upper - self.lower) * expit(z)
+
+    def inverse_slope(self, z):
+        """Derivative ``dy/dz`` of the inverse transform (for delta-method conversions)."""
+        z = np.asarray(z, dtype=float)
+        if self.kind == "none":
+            return np.ones_like(z)
+        if self.kind == "log":
+            return np.exp(z)
+        s = expit(z)
+        return (self.upper - self.lower) * s * (1.0 - s)
+
+    def forward_limit(self, v):
+        """Transform a limit; ``None`` passes through, limits at or beyond a bound map to ``+-inf``."""
+        if v is None:
+            return None
+        v_arr = np.asarray(v, dtype=float)
+        out = np.full(v_arr.shape, np.nan)
+        low, high = v_arr <= self.lower, v_arr >= self.upper
+        inside = ~(low | high)
+        out[low], out[high] = -np.inf, np.inf
+        if self.kind == "none":
+            out[inside] = v_arr[inside]
+        else:
+            out[inside] = self.forward(v_arr[inside])
+        return float(out) if out.ndim == 0 else out
+
+
+def _as_transform(transform, bounds):
+    if isinstance(transform, Transform):
+        return transform
+    return Transform(transform, bounds)
+
+
+def _check_xy(X, y=None, d=None):
+    X = np.asarray(X, dtype=float)
+    if X.ndim == 1:
+        X = X.reshape(-1, 1) if d in (None, 1) else X.reshape(1, -1)
+    if X.ndim != 2 or not np.all(np.isfinite(X)):
+        raise InputError("factor settings must be a finite 2-D table (runs x factors)")
+    if d is not None and X.shape[1] != d:
+        raise InputError(f"factor settings have {X.shape[1]} columns, the model was fitted on {d}")
+    if y is None:
+        return X
+    y = np.asarray(y, dtype=float).ravel()
+    if y.shape[0] != X.shape[0]:
+        raise InputError(f"{X.shape[0]} runs of factor settings but {y.shape[0]} response values")
+    if not np.all(np.isfinite(y)):
+        raise InputError("response values must be finite; drop runs that were not measured")
+    return X, y
+
+
+class _ResponseModel:
+    """Shared interval logic of the per-response models."""
+
+    kind = ""
+
+    def interval_quantile(self, level, loo=False):
+        """Two-sided quantile multiplier for a central interval of probability ``level``."""
+        raise NotImplementedError
+
+    def predict_interval(self, X, level=0.95, noise=True):
+        """Median and central ``level`` interval in natural units.
+
+        The latent normal (or Student-t) quantiles are mapped through the inverse transform, which is
+        exact for a monotone transform.
+
+        Returns
+        -------
+        median, low, high : ndarray (n,)
+        """
+        if not 0.0 < level < 1.0:
+            raise InputError(f"interval level must lie strictly between 0 and 1, got {level}")
+        mu, sd = self.predict(X, return_std=True, noise=noise)
+        q = self.interval_quantile(level)
+        inv = self.transform_.inverse
+        return inv(mu), inv(mu - q * sd), inv(mu + q * sd)
+
+
+class GPModel(_ResponseModel):
+    """Gaussian-process model of one response (scikit-learn ``GaussianProcessRegressor``).
+
+    Kernel ``C * Matern(nu, one length scale per factor) + White`` on standardised latent outputs,
+    hyperparameters by maximum marginal likelihood with ``n_restarts`` random restarts
+    (Rasmussen & Williams 2006, *Gaussian Processes for Machine Learning*, ch. 2 and 5).
+    Replicated runs are kept: they inform the noise level.
+
+    Parameters
+    ----------
+    transform : {"none", "log", "logit"} or Transform
+    bounds : (float, float) or None
+        Physical bounds for the transform.
+    n_restarts : int
+        Optimizer restarts from random starting points.
+    random_state : int
+    nu : float
+        Matern smoothness (2.5: twice differentiable).
+
+    Attributes
+    ----------
+    gp_ : GaussianProcessRegressor
+    transform_ : Transform
+    y_mean_, y_scale_ : float
+        Standardisation of the latent response (``y_scale_`` is 1 for a constant response).
+    noise_std_, signal_std_ : float
+        Run-to-run noise sd and process (signal) sd, latent units.
+    length_scales_ : ndarray (d,)
+        Length scales in coded units.
+    X_train_, z_train_ : ndarray
+        Training inputs and latent responses.
+    warning_ : str
+        Empty, or a plain-words note (e.g. constant response).
+    """
+
+    kind = "gp"
+
+    def __init__(self, transform="none", bounds=None, n_restarts=5, random_state=0, nu=2.5):
+        self.transform = transform
+        self.bounds = bounds
+        self.n_restarts = n_restarts
+        self.random_state = random_state
+        self.nu = nu
+
+    def _kernel(self, d):
+        return (ConstantKernel(1.0, CONSTANT_BOUNDS)
+                * Matern(length_scale=np.full(d, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=self.nu)
+                + WhiteKernel(1e-2, NOISE_BOUNDS))
+
+    def fit(self, X, y):
+        """Fit to coded settings ``X`` (n, d) and natural-unit responses ``y`` (n,)."""
+        X, y = _check_xy(X, y)
+        if X.shape[0] < 2:
+            raise InputError(f"a Gaussian-process model needs at least 2 measured runs, got {X.shape[0]}")
+        self.transform_ = _as_transform(self.transform, self.bounds)
+        z = self.transform_.forward(y)
+        self.y_mean_ = float(np.mean(z))
+        scale = float(np.std(z))
+        self.warning_ = ""
+        if not scale > 1e-12 * max(1.0, abs(self.y_mean_)):
+            scale = 1.0
+            self.warning_ = "all measured values are equal; the model predicts a constant"
+        self.y_scale_ = scale
+        gp = GaussianProcessRegressor(kernel=self._kernel(X.shape[1]), alpha=JITTER, normalize_y=False,
+                                      n_restarts_optimizer=self.n_restarts, random_state=self.random_state)
+        with warnings.catch_warnings():
+            # hyperparameters at a bound are reported by windowfinder.diagnostics in plain words
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            gp.fit(X, (z - self.y_mean_) / self.y_scale_)
+        self._set_fitted(gp, X, z)
+        return self
+
+    def _set_fitted(self, gp, X, z):
+        self.gp_ = gp
+        self.X_train_, self.z_train_ = X, z
+        k = gp.kernel_
+        self._signal = k.k1
+        self.signal_std_ = self.y_scale_ * float(np.sqrt(k.k1.k1.constant_value))
+        self.noise_std_ = self.y_scale_ * float(np.sqrt(k.k2.noise_level))
+        self.length_scales_ = np.broadcast_to(np.asarray(k.k1.k2.length_scale, float), (X.shape[1],)).copy()
+
+    def predict(self, X, return_std=True, noise=False):
+        """Latent mean and sd (of the latent function, plus noise when ``noise=True``).
+
+        Standard GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26), computed with the fitted
+        signal kernel so the sd excludes the white-noise term unless asked for.
+        """
+        X = _check_xy(X, d=self.X_train_.shape[1])
+        Ks = self._signal(X, self.X_train_)
+        mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
+        if not return_std:
+            return mean
+        V = solve_triangular(self.gp_.L_, Ks.T, lower=True, check_finite=False)
+        var = self._signal.diag(X) - np.einsum("ij,ij->j", V, V)
+        var = np.maximum(var, 0.0) * self.y_scale_ ** 2
+        if noise:
+            var = var + self.noise_std_ ** 2
+        return mean, np.sqrt(var)
+
+    def interval_quantile(self, level, loo=False):
+        return float(stats.norm.ppf(0.5 + level / 2.0))
+
+    def loo(self):
+        """Closed-form leave-one-out predictions at fixed hyperparameters.
+
+        Rasmussen & Williams (2006), §5.4.2, eqs. 5.10-5.12: with ``K`` the full training covariance
+        (signal + white noise + jitter), ``mu_i = y_i - [K^-1 y]_i / [K^-1]_ii`` and
+        ``sigma_i^2 = 1 / [K^-1]_ii``. The standardisation constants are held fixed too.
+
+        Returns
+        -------
+        mean, sd : ndarray (n,)
+            Latent units; ``sd`` is the predictive sd of the held-out observation (includes noise).
+        """
+        n = self.X_train_.shape[0]
+        Kinv = cho_solve((self.gp_.L_, True), np.eye(n))
+        d = np.diag(Kinv)
+        ys = (self.z_train_ - self.y_mean_) / self.y_scale_
+        mu = ys - self.gp_.alpha_ / d
+        return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ / np.sqrt(d)
+
+    def condition(self, X_new, y_new_latent):
+        """New model with the same hyperparameters and standardisation, data augmented.
+
+        For batch fantasies (kriging believer): no re-optimisation.
+        """
+        X_new = _check_xy(X_new, d=self.X_train_.shape[1])
+        y_new = np.broadcast_to(np.asarray(y_new_latent, float).ravel(), (X_new.shape[0],))
+        X = np.vstack([self.X_train_, X_new])
+        z = np.concatenate([self.z_train_, y_new])
+        gp = GaussianProcessRegressor(kernel=self.gp_.kernel_, alpha=JITTER, normalize_y=False, optimizer=None)
+        gp.fit(X, (z - self.y_mean_) / self.y_scale_)
+        new = copy.copy(self)
+        new._set_fitted(gp, X, z)
+        return new
+
+
+def feature_names(d, degree=2, names=None):
+    """Names of the response-surface terms in :func:`quadratic_features` order.
+
+    Order: intercept ``1``; linear ``x1..xd``; for ``degree=2`` the interactions ``xi*xj`` (i < j, row by
+    row) then the squares ``xi^2``.
+    """
+    names = [f"x{i + 1}" for i in range(d)] if names is None else list(names)
+    out = ["1", *names]
+    if degree == 2:
+        out += [f"{names[i]}*{names[j]}" for i in range(d) for j in range(i + 1, d)]
+        out += [f"{n}^2" for n in names]
+    return out
+
+
+def quadratic_features(X, degree=2):
+    """Model matrix of a first- or full second-order polynomial (order as :func:`feature_names`)."""
+    X = np.asarray(X, dtype=float)
+    n, d = X.shape
+    cols = [np.ones(n), *X.T]
+    if degree == 2:
+        cols += [X[:, i] * X[:, j] for i in range(d) for j in range(i + 1, d)]
+        cols += [X[:, i] ** 2 for i in range(d)]
+    return np.column_stack(cols)
+
+
+class QuadraticModel(_ResponseModel):
+    """Classical response-surface model fitted by least squares.
+
+    Montgomery (2013), *Design and Analysis of Experiments*, 8th ed., §10.2-10.6 (regression, prediction
+    variance, PRESS) and ch. 11 (second-order response surfaces); Myers, Montgomery & Anderson-Cook,
+    *Response Surface Methodology*.
+
+    Parameters
+    ----------
+    transform : {"none", "log", "logit"} or Transform
+    bounds : (float, float) or None
+    degree : {1, 2}
+        1: first-order model; 2 (default): full second-order model.
+    coding : {"pm1", "unit"}
+        Units of ``coef_``: ``"pm1"`` uses the classical coding ``x = 2u - 1`` (factor low/high at
+        -1/+1); ``"unit"`` uses the [0, 1] inputs directly. Predictions do not depend on it.
+
+    Attributes
+    ----------
+    coef_ : ndarray (p,)
+        Coefficients in :func:`feature_names` order (latent scale, ``coding`` units).
+    xtx_inv_ : ndarray (p, p)
+    hat_ : ndarray (n,)
+        Leverages ``h_ii``.
+    s2_, noise_std_ : float
+        Residual mean square and its root (latent units); ``df_resid_ = n - p``.
+    """
+
+    kind = "quadratic"
+
+    def __init__(self, transform="none", bounds=None, degree=2, coding="pm1"):
+        self.transform = transform
+        self.bounds = bounds
+        self.degree = degree
+        self.coding = coding
+
+    def _features(self, X):
+        return quadratic_features(2.0 * X - 1.0 if self.coding == "pm1" else X, self.degree)
+
+    def feature_names(self, d=None, names=None):
+        """Term names for ``d`` factors (defaults to the fitted number)."""
+        return feature_names(self.X_train_.shape[1] if d is None else d, self.degree, names)
+
+    def fit(self, X, y):
+        """Least-squares fit to coded settings ``X`` and natural-unit responses ``y``."""
+        if self.degree not in (1, 2) or self.coding not in ("pm1", "unit"):
+            raise InputError(f"quadratic model: degree must be 1 or 2 and coding pm1 or unit, "
+                             f"got {self.degree}, {self.coding}")
+        X, y = _check_xy(X, y)
+        self.transform_ = _as_transform(self.transform, self.bounds)
+        z = self.transform_.forward(y)
+        F = self._features(X)
+        n, p = F.shape
+        if n <= p:
+            raise InputError(
+                f"the {'second' if self.degree == 2 else 'first'}-order model in {X.shape[1]} factors has "
+                f"{p} coefficients and needs at least {p + 1} runs (one more than its coefficients, to "
+                f"estimate the noise); got {n}; add runs or use the Gaussian-process model")
+        rank = np.linalg.matrix_rank(F)
+        if rank < p:
+            raise InputError(
+                f"the runs cannot separate all {p} terms of the polynomial model (rank {rank}); each factor "
+                "needs at least 3 levels for its square term; add centre or axial runs or use the "
+                "Gaussian-process model")
+        self.X_train_, self.z_train_ = X, z
+        self._solve(F, z)
+        self.warning_ = ""
+        return self
+
+    def _solve(self, F, z):
+        Q, R = np.linalg.qr(F)
+        self.coef_ = solve_triangular(R, Q.T @ z)
+        Rinv = solve_triangular(R, np.eye(R.shape[0]))
+        self.xtx_inv_ = Rinv @ Rinv.T
+        self.hat_ = np.einsum("ij,ij->i", Q, Q)
+        self.resid_ = z - F @ self.coef_
+        self.df_resid_ = F.shape[0] - F.shape[1]
+        self.s2_ = float(self.resid_ @ self.resid_) / self.df_resid_
+        self.noise_std_ = float(np.sqrt(self.s2_))
+
+    def predict(self, X, return_std=True, noise=False):
+        """Latent mean and sd: ``s^2 x0'(X'X)^-1 x0`` (model), plus ``s^2`` with ``noise=True``.
+
+        Montgomery (2013), §10.5 (confidence interval on the mean response) and §10.6 (prediction of new
+        observations).
+        """
+        X = _check_xy(X, d=self.X_train_.shape[1])
+        F = self._features(X)
+        mean = F @ self.coef_
+        if not return_std:
+            return mean
+        var = self.s2_ * np.einsum("ij,jk,ik->i", F, self.xtx_inv_, F)
+        if noise:
+            var = var + self.s2_
+        return mean, np.sqrt(var)
+
+    def interval_quantile(self, level, loo=False):
+        """Student-t quantile with the residual degrees of freedom (one fewer for leave-one-out)."""
+        df = self.df_resid_ - 1 if loo and self.df_resid_ > 1 else self.df_resid_
+        return float(stats.t.ppf(0.5 + level / 2.0, df))
+
+    def loo(self):
+        """Leave-one-out predictions from the hat matrix, exact for least squares.
+
+        ``mu_i = y_i - e_i / (1 - h_ii)`` (PRESS residuals) and predictive variance
+        ``s_(i)^2 / (1 - h_ii)`` with ``s_(i)^2 = ((n - p) s^2 - e_i^2 / (1 - h_ii)) / (n - p - 1)``
+        (Montgomery 2013, §10.7, PRESS and R-student). With ``n = p + 1`` the full-data ``s^2`` is used.
+        Runs with leverage 1 get NaN.
+
+        Returns
+        -------
+        mean, sd : ndarray (n,), latent units
+        """
+        one_h = 1.0 - self.hat_
+        ok = one_h > 1e-10
+        e = self.resid_
+        with np.errstate(divide="ignore", invalid="ignore"):
+            press = np.where(ok, e / one_h, np.nan)
+            if self.df_resid_ > 1:
+                s2_i = (self.df_resid_ * self.s2_ - e * press) / (self.df_resid_ - 1)
+            else:
+                s2_i = np.full_like(e, self.s2_)
+            sd = np.where(ok, np.sqrt(np.maximum(s2_i, 0.0) / one_h), np.nan)
+        return self.z_train_ - press, sd
+
+    def condition(self, X_new, y_new_latent):
+        """New model refitted on the augmented data (least squares has no hyperparameters)."""
+        X_new = _check_xy(X_new, d=self.X_train_.shape[1])
+        y_new = np.broadcast_to(np.asarray(y_new_latent, float).ravel(), (X_new.shape[0],))
+        new = copy.copy(self)
+        new.X_train_ = np.vstack([self.X_train_, X_new])
+        new.z_train_ = np.concatenate([self.z_train_, y_new])
+        new._solve(new._features(new.X_train_), new.z_train_)
+        return new
+
+
+class FailureModel:
+    """Probability that the process works (gives usable product) at a setting.
+
+    Gaussian-process classification with the Laplace approximation (Rasmussen & Williams 2006, §3.4),
+    scikit-learn ``GaussianProcessClassifier``, kernel ``C * Matern(2.5)`` with the same bounded length
+    scales as :class:`GPModel`. When every run worked, or every run failed, there is no boundary to
+    learn: the model returns the constant Laplace rule-of-succession estimate ``(k + 1) / (n + 2)``
+    (k runs worked out of n).
+
+    Attributes
+    ----------
+    gpc_ : GaussianProcessClassifier or None
+    constant_ : float or None
+        The constant probability when the classifier is not used.
+    """
+
+    def __init__(self, random_state=0, n_restarts=2):
+        self.random_state = random_state
+        self.n_restarts = n_restarts
+
+    def fit(self, X, works):
+        X = _check_xy(X)
+        works = np.asarray(works, dtype=bool).ravel()
+        if works.shape[0] != X.shape[0]:
+            raise InputError(f"{X.shape[0]} runs of factor settings but {works.shape[0]} run outcomes")
+        self.d_ = X.shape[1]
+        k, n = int(works.sum()), works.shape[0]
+        self.gpc_, self.constant_ = None, None
+        if k in (0, n):
+            self.constant_ = (k + 1.0) / (n + 2.0)
+            return self
+        kernel = ConstantKernel(1.0, CONSTANT_BOUNDS) * Matern(
+            length_scale=np.full(self.d_, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=2.5)
+        gpc = GaussianProcessClassifier(kernel=kernel, n_restarts_optimizer=self.n_restarts,
+                                        random_state=self.random_state)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            self.gpc_ = gpc.fit(X, works.astype(int))
+        return self
+
+    def predict_proba(self, X):
+        """P(process works) at each row of ``X``, shape (n,)."""
+        X = _check_xy(X, d=self.d_)
+        if self.gpc_ is None:
+            return np.full(X.shape[0], self.constant_)
+        col = list(self.gpc_.classes_).index(1)
+        return self.gpc_.predict_proba(X)[:, col]
+
+
+class Surrogates:
+    """The models of one study: one per response, plus an optional failure model.
+
+    Parameters
+    ----------
+    models : dict[str, GPModel | QuadraticModel]
+    failure : FailureModel or None
+    """
+
+    def __init__(self, models, failure=None):
+        self.models = dict(models)
+        self.failure = failure
+
+    @property
+    def names(self):
+        return list(self.models)
+
+    def __getitem__(self, name):
+        return self.models[name]
+
+    def predict(self, X, noise=False):
+        """``{response: (latent mean, latent sd)}``."""
+        return {name: m.predict(X, return_std=True, noise=noise) for name, m in self.models.items()}
+
+    def p_works(self, X):
+        """P(process works); ones when no run failed."""
+        X = _check_xy(X)
+        return np.ones(X.shape[0]) if self.failure is None else self.failure.predict_proba(X)
+
+    @classmethod
+    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0):
+        """Fit one model per response.
+
+        Parameters
+        ----------
+        X : ndarray (n, d), coded
+        Y : dict[str, ndarray (n,)]
+            Natural units, NaN where not measured (those rows are dropped for that response).
+        transforms : dict[str, (kind, bounds) | str | Transform]
+        works : bool ndarray (n,) or None
+            False for failed runs; they are left out of the response models and, when any run failed,
+            feed a :class:`FailureModel`.
+        kind : {"gp", "quadratic"}
+        """
+        if kind not in ("gp", "quadratic"):
+            raise InputError(f"model kind '{kind}' is unknown; use gp or quadratic")
+        X = _check_xy(X)
+        n = X.shape[0]
+        ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
+        transforms = transforms or {}
+        models = {}
+        for name, y in Y.items():
+            y = np.asarray(y, dtype=float).ravel()
+            if y.shape[0] != n:
+                raise InputError(f"response {name}: {y.shape[0]} values for {n} runs")
+            rows = ok & np.isfinite(y)
+            t = transforms.get(name, "none")
+            t = t if isinstance(t, (str, Transform)) else Transform(*t)
+            try:
+                if kind == "gp":
+                    m = GPModel(transform=t, n_restarts=n_restarts, random_state=seed)
+                else:
+                    m = QuadraticModel(transform=t)
+                models[name] = m.fit(X[rows], y[rows])
+            except InputError as err:
+                raise InputError(f"response {name}: {err}") from None
+        failure = None
+        if works is not None and not ok.all():
+            failure = FailureModel(random_state=seed).fit(X, ok)
+        return cls(models, failure)
