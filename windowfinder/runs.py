@@ -103,11 +103,11 @@ def empty_table(spec: StudySpec) -> pd.DataFrame:
 def _read_text(path: Path) -> str:
     data = path.read_bytes()
     if b"\x00" in data:
-        raise InputError(f"{path}: binary file, not a CSV table; export the runs as CSV (UTF-8)")
+        raise InputError(f"{path.name}: binary file, not a CSV table; export the runs as CSV (UTF-8)")
     try:
         return data.decode("utf-8-sig")
     except UnicodeDecodeError:
-        raise InputError(f"{path}: not UTF-8 text; save the table as CSV UTF-8") from None
+        raise InputError(f"{path.name}: not UTF-8 text; save the table as CSV UTF-8") from None
 
 
 def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
@@ -116,30 +116,30 @@ def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
         try:
             import openpyxl  # noqa: F401
         except ImportError:
-            raise InputError(f"{path}: reading .xlsx needs openpyxl; pip install 'windowfinder[xlsx]' "
+            raise InputError(f"{path.name}: reading .xlsx needs openpyxl; pip install 'windowfinder[xlsx]' "
                              "or save the sheet as CSV") from None
         try:
             df = pd.read_excel(path, dtype=str, keep_default_na=False, engine="openpyxl")
         except Exception as e:  # openpyxl raises many types for a damaged file
-            raise InputError(f"{path}: cannot read the workbook ({type(e).__name__}); "
+            raise InputError(f"{path.name}: cannot read the workbook ({type(e).__name__}); "
                              "save it again or export CSV") from None
         header = [str(c) for c in df.columns]
         rows = [[str(v) for v in r] for r in df.itertuples(index=False)]
         return header, rows, list(range(2, len(rows) + 2))
     text = _read_text(path)
     if not text.strip():
-        raise InputError(f"{path}: empty file; it needs a header line: run, factor and response columns")
+        raise InputError(f"{path.name}: empty file; it needs a header line: run, factor and response columns")
     try:
         reader = csv.reader(io.StringIO(text))
         lines = []
         for rec in reader:
             lines.append((reader.line_num, rec))
     except csv.Error as e:
-        raise InputError(f"{path}: malformed CSV ({e}); check quotes") from None
+        raise InputError(f"{path.name}: malformed CSV ({e}); check quotes") from None
     lines = [(n, r) for n, r in lines if any(c.strip() for c in r)]
     header = [c.strip() for c in lines[0][1]]
     if len(header) == 1 and ";" in header[0]:
-        raise InputError(f"{path}: the columns are separated by ';'; save the file comma-separated "
+        raise InputError(f"{path.name}: the columns are separated by ';'; save the file comma-separated "
                          "(with '.' as decimal point)")
     return header, [r for _, r in lines[1:]], [n for n, _ in lines[1:]]
 

@@ -1,0 +1,65 @@
+"""Shared fixtures: a small study folder written from text, and a snapshot of a folder's bytes."""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+
+import pytest
+
+STUDY = """\
+[study]
+name = "test study"
+confidence = 0.9
+seed = 3
+
+[[factor]]
+name = "temperature"
+unit = "degC"
+low = 40.0
+high = 90.0
+step = 0.5
+tolerance = 1.0
+
+[[factor]]
+name = "time"
+unit = "min"
+low = 30.0
+high = 180.0
+
+[[response]]
+name = "yield"
+unit = "%"
+goal = "maximize"
+min = 80.0
+
+[[response]]
+name = "exotherm"
+unit = "K"
+max = 50.0
+kind = "safety"
+"""
+
+RUNS = """\
+run,temperature,time,yield,exotherm,status,note
+R001,50,60,78.1,20.5,done,
+R002,60,90,82.3,30.1,done,
+R003,70,120,85.0,41.2,done,first try
+R004,80,150,,55.0,done,yield not measured
+R005,85,170,,,failed,tar formed
+"""
+
+
+@pytest.fixture
+def study_dir(tmp_path: Path) -> Path:
+    d = tmp_path / "study"
+    d.mkdir()
+    (d / "study.toml").write_text(STUDY)
+    (d / "runs.csv").write_text(RUNS)
+    return d
+
+
+def snapshot(folder: Path) -> dict:
+    """Path -> sha256 of every file below ``folder`` (to prove nothing was written or lost)."""
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
