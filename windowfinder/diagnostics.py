@@ -1,0 +1,199 @@
+"""Leave-one-out checks of a fitted response model, with warnings in plain words.
+
+Each run is predicted from all the others (closed form, see ``model.loo()``); from these predictions
+come Q^2 (share of the variation the model predicts for runs it has not seen), the root-mean-square
+error and the coverage of the 95% intervals. A Gaussian-process model also reports its length scales:
+one at a bound means the runs cannot pin the model down along that factor.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+
+from windowfinder.errors import InputError
+from windowfinder.surrogate import LENGTH_SCALE_BOUNDS, NOISE_BOUNDS
+
+# Thresholds for the warnings (common practice, no source).
+Q2_MIN = 0.5
+COVERAGE_MIN = 0.80  # of the 95% intervals; coverage cannot exceed 1, so only "too narrow" is testable
+COVERAGE_MIN_RUNS = 10
+BOUND_SLACK = 1.01  # a hyperparameter within 1% of its bound counts as "at the bound"
+
+
+def _json_number(v):
+    v = float(v)
+    return v if math.isfinite(v) else None
+
+
+@dataclass
+class ModelDiagnostics:
+    """Leave-one-out (LOO) checks of one response model.
+
+    Attributes
+    ----------
+    response : str
+    model : {"gp", "quadratic"}
+    n : int
+        Runs the model was fitted on.
+    loo_q2 : float
+        ``1 - PRESS / SS_tot`` with ``PRESS = sum (y_i - yhat_(i))^2`` (Allen 1974, PRESS; Montgomery
+        2013, §10.7). Natural units: for a transformed response ``yhat_(i)`` is the inverse-transformed
+        LOO median. NaN when every measured value is equal.
+    loo_rmse : float
+        ``sqrt(PRESS / n)``, natural units (inverse-transformed LOO medians vs measured values).
+    coverage95 : float
+        Share of runs whose measured value lies inside its 95% LOO interval (noise included).
+    length_scales : dict[str, float]
+        Gaussian-process length scale per factor in factor units (coded length * (high - low));
+        empty for the quadratic model.
+    noise_sd : float
+        Run-to-run noise sd in natural units; for a transformed response a delta-method approximation at
+        the mean latent response.
+    warnings : list[str]
+    measured, loo_median, loo_low, loo_high : list[float]
+        Per-run measured value and LOO median and 95% interval (natural units), for plots.
+    """
+
+    response: str
+    model: str
+    n: int
+    loo_q2: float
+    loo_rmse: float
+    coverage95: float
+    length_scales: dict = field(default_factory=dict)
+    noise_sd: float = float("nan")
+    warnings: list = field(default_factory=list)
+    measured: list = field(default_factory=list)
+    loo_median: list = field(default_factory=list)
+    loo_low: list = field(default_factory=list)
+    loo_high: list = field(default_factory=list)
+
+    def to_dict(self):
+        """JSON-safe dict (NaN and infinities become None)."""
+        out = asdict(self)
+        for key, value in out.items():
+            if isinstance(value, float):
+                out[key] = _json_number(value)
+            elif isinstance(value, list) and key != "warnings":
+                out[key] = [_json_number(v) for v in value]
+            elif isinstance(value, dict):
+                out[key] = {k: _json_number(v) for k, v in value.items()}
+        return out
+
+    def to_frame(self):
+        """One-row summary table (length scales as ``length_scale:<factor>`` columns)."""
+        row = {k: getattr(self, k) for k in ("response", "model", "n", "loo_q2", "loo_rmse", "coverage95",
+                                              "noise_sd")}
+        row.update({f"length_scale:{k}": v for k, v in self.length_scales.items()})
+        row["warnings"] = "; ".join(self.warnings)
+        return pd.DataFrame([row])
+
+    def loo_frame(self):
+        """Per-run table: measured value, LOO median, 95% interval and whether the value is inside."""
+        df = pd.DataFrame({"measured": self.measured, "loo_median": self.loo_median,
+                           "loo_low": self.loo_low, "loo_high": self.loo_high})
+        df["inside"] = (df["loo_low"] <= df["measured"]) & (df["measured"] <= df["loo_high"])
+        return df
+
+
+def _length_scale_checks(model, response, factor_names, factor_spans):
+    """Length scales in factor units and plain-words warnings for those at a bound."""
+    coded = np.asarray(getattr(model, "length_scales_", []), dtype=float)
+    if model.kind != "gp" or coded.size == 0:
+        return {}, []
+    if len(factor_names) != coded.size or len(factor_spans) != coded.size:
+        raise InputError(f"response {response}: the model has {coded.size} factors but "
+                         f"{len(factor_names)} names and {len(factor_spans)} spans were given")
+    scales = {str(f): float(c * s) for f, c, s in zip(factor_names, coded, factor_spans)}
+    notes = []
+    low, high = LENGTH_SCALE_BOUNDS
+    for f, c in zip(factor_names, coded):
+        if c <= low * BOUND_SLACK:
+            notes.append(f"{response} changes faster along {f} than the runs can resolve (length scale at "
+                         f"its lower bound); add runs along {f} or narrow its range")
+        elif c >= high / BOUND_SLACK:
+            notes.append(f"factor {f} looks inactive for {response} (length scale at its upper bound)")
+    noise_var = (model.noise_std_ / model.y_scale_) ** 2
+    if noise_var <= NOISE_BOUNDS[0] * BOUND_SLACK ** 2:
+        notes.append(f"the {response} model passes through every run (noise estimated near zero); "
+                     "replicate runs would show the real scatter")
+    return scales, notes
+
+
+def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=()):
+    """Leave-one-out diagnostics of a fitted :class:`~windowfinder.surrogate.GPModel` or ``QuadraticModel``.
+
+    Parameters
+    ----------
+    model : fitted GPModel or QuadraticModel
+    y : array (n,) or None
+        Measured values (natural units) of the runs the model was fitted on, in the same order.
+        ``None`` recovers them from the model (inverse transform of ``z_train_``).
+    response_name : str
+    factor_names : sequence of str
+        Factor names in column order (used for GP length scales).
+    factor_spans : sequence of float
+        ``high - low`` per factor, to express length scales in factor units.
+
+    Returns
+    -------
+    ModelDiagnostics
+
+    Notes
+    -----
+    LOO predictions at fixed hyperparameters: Rasmussen & Williams (2006), §5.4.2 for the Gaussian
+    process; PRESS residuals from the hat matrix for least squares (Montgomery 2013, §10.7). Intervals
+    use the model's own quantile (normal for the GP, Student t with ``n - p - 1`` degrees of freedom for
+    least squares). Warnings: Q^2 below 0.5; with at least 10 runs, 95% coverage below 0.80 (coverage
+    cannot exceed 1, so intervals that are too wide do not show in this count); GP length scales or noise
+    level at a bound.
+    """
+    tr = model.transform_
+    y = tr.inverse(model.z_train_) if y is None else np.asarray(y, dtype=float).ravel()
+    n = model.z_train_.shape[0]
+    if y.shape[0] != n:
+        raise InputError(f"response {response_name}: {y.shape[0]} measured values for a model fitted on {n} runs")
+    mu, sd = model.loo()
+    q = model.interval_quantile(0.95, loo=True)
+    median, low, high = tr.inverse(mu), tr.inverse(mu - q * sd), tr.inverse(mu + q * sd)
+    ok = np.isfinite(median) & np.isfinite(sd)
+    notes = [model.warning_] if getattr(model, "warning_", "") else []
+    if not ok.all():
+        notes.append(f"{int((~ok).sum())} run(s) of {response_name} cannot be predicted from the others "
+                     "(each alone fixes a model term); they are left out of these checks")
+    resid = y[ok] - median[ok]
+    press = float(resid @ resid)
+    ss_tot = float(np.sum((y[ok] - y[ok].mean()) ** 2))
+    q2 = 1.0 - press / ss_tot if ss_tot > 0 else float("nan")
+    rmse = math.sqrt(press / max(int(ok.sum()), 1))
+    inside = (low[ok] <= y[ok]) & (y[ok] <= high[ok])
+    coverage = float(inside.mean()) if ok.any() else float("nan")
+
+    if q2 < Q2_MIN:
+        notes.append(f"the {response_name} model explains little of the variation (leave-one-out "
+                     f"Q^2 = {q2:.2f}); do not trust its window")
+    if n >= COVERAGE_MIN_RUNS and coverage < COVERAGE_MIN:
+        notes.append(f"the {response_name} intervals are too narrow: only {int(inside.sum())} of "
+                     f"{inside.size} runs fall inside their 95% leave-one-out interval")
+    scales, ls_notes = _length_scale_checks(model, response_name, list(factor_names), list(factor_spans))
+    notes += ls_notes
+    z_bar = float(np.mean(model.z_train_))
+    noise_sd = float(model.noise_std_ * tr.inverse_slope(z_bar))
+    return ModelDiagnostics(
+        response=response_name, model=model.kind, n=n, loo_q2=q2, loo_rmse=rmse, coverage95=coverage,
+        length_scales=scales, noise_sd=noise_sd, warnings=notes, measured=y.tolist(),
+        loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist())
+
+
+def diagnose_all(surrogates, factor_names=(), factor_spans=()):
+    """:func:`diagnose` for every response model of a :class:`~windowfinder.surrogate.Surrogates`."""
+    return [diagnose(m, None, name, factor_names, factor_spans) for name, m in surrogates.models.items()]
+
+
+def summary_frame(diagnostics):
+    """One row per response, from a list of :class:`ModelDiagnostics`."""
+    return pd.concat([d.to_frame() for d in diagnostics], ignore_index=True)
