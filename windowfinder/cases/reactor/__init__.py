@@ -1,0 +1,1 @@
+"""Demo case: batch reactor, A -> B -> C (see README.md)."""

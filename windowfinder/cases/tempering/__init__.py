@@ -1,0 +1,1 @@
+"""Demo case: tempering of a quenched alloy steel part (see README.md)."""
