@@ -101,6 +101,106 @@ def format_diagnostics(res, spec) -> str:
     return "\n".join(lines)
 
 
+def _set_point(items, spec):
+    if not items:
+        return None
+    out = {}
+    for it in items:
+        name, sep, value = it.partition("=")
+        if not sep:
+            raise InputError(f"--set-point '{it}': write NAME=VALUE, e.g. {spec.factor_names[0]}=50")
+        spec.factor(name.strip())
+        try:
+            out[name.strip()] = float(value)
+        except ValueError:
+            raise InputError(f"--set-point '{it}': '{value}' is not a number") from None
+    return out
+
+
+def _print_cautions(cautions, safety: bool):
+    for c in cautions:
+        print(("CAUTION: " if safety and c is cautions[0] else "note: ") + c)
+
+
+def cmd_window(args):
+    from .answers import build_window
+    from .export import window_table, write_window
+
+    study = _load(args)
+    sp = _set_point(args.set_point, study.spec)
+    fit = study.fit()
+    _warn(fit.warnings)
+    print("searching for the largest window ...", file=sys.stderr)
+    win = build_window(study.spec, fit, args.confidence, set_point=sp, mean_only=args.mean)
+    paths = write_window(_out(study, ""), win, study.spec.name)
+    print(window_table(win))
+    if win.found:
+        for p in win.predicted:
+            print(f"  {p['response']:<16} predicted {p['low']:.4g} .. {p['high']:.4g} {p['unit']}"
+                  f"  (95% PI {p['pi95_low']:.4g} .. {p['pi95_high']:.4g}; limit {p['limit']})")
+    _print_cautions(win.cautions, win.safety)
+    print("written: " + ", ".join(str(p) for p in paths))
+
+
+def cmd_tradeoff(args):
+    from .answers import build_tradeoff
+    from .export import write_csv
+
+    study = _load(args)
+    fit = study.fit()
+    _warn(fit.warnings)
+    print("searching the trade-off front ...", file=sys.stderr)
+    tr = build_tradeoff(study.spec, fit, args.confidence, mean_only=args.mean, pick=args.pick)
+    path = write_csv(_out(study, "tradeoff.csv"), tr.frame)
+    print(tr.message)
+    pick = tr.pick
+    if pick is not None:
+        spec = study.spec
+        print(f"balanced pick ({tr.pick_method}): " + ", ".join(
+            f"{f.name} = {pick[f.name]:.4g} {f.unit}".rstrip() for f in spec.factors))
+        for r in spec.responses:
+            print(f"  {r.name:<16} {pick[r.name + '_pred']:.4g} {r.unit} (95% PI "
+                  f"{pick[r.name + '_lo95']:.4g} .. {pick[r.name + '_hi95']:.4g})")
+        print(f"  P(all limits met) = {pick['p_all_limits']:.3f}")
+    _print_cautions(tr.cautions, study.spec.has_safety)
+    print(f"written: {path} ({len(tr.frame)} settings)")
+
+
+def cmd_testplan(args):
+    from .answers import build_window
+    from .export import write_csv
+    from .testplan import build_testplan
+
+    study = _load(args)
+    fit = study.fit()
+    win = build_window(study.spec, fit, args.confidence)
+    plan = build_testplan(study.spec, fit, win, study.runs.frame["run"], runs=args.runs)
+    path = write_csv(_out(study, "testplan.csv"), plan.frame)
+    print(plan.message)
+    print(plan.frame[["run", "point", *study.spec.factor_names]].to_string(index=False))
+    _print_cautions(win.cautions[:1], study.spec.has_safety)
+    print(f"written: {path}; fill in the response columns, then 'windowfinder verify "
+          f"{args.study_dir} {path}'")
+
+
+def cmd_verify(args):
+    from .export import write_csv
+    from .testplan import read_filled_plan, verify_plan
+
+    study = _load(args)
+    filled = read_filled_plan(args.file, study.spec)
+    ver = verify_plan(study.spec, filled, study.runs.frame["run"])
+    for c in ver.frame.to_dict("records"):
+        flag = ("ok" if c["inside_interval"] else "outside 95% PI") + (
+            "" if c["meets_limit"] else ", LIMIT BROKEN")
+        print(f"{c['run']:<6} {c['response']:<16} {c['measured']:>10.4g}  "
+              f"[{c['lo95']:.4g}, {c['hi95']:.4g}]  {flag}")
+    path = write_csv(_out(study, "verification.csv"), ver.frame)
+    study.add_runs(ver.results)
+    print(ver.verdict)
+    print(f"written: {path}; {len(ver.results)} runs appended to {study.runs_path}")
+
+
 # -- parser ----------------------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     from .designs import METHODS
@@ -122,17 +222,33 @@ def build_parser() -> argparse.ArgumentParser:
     s = verb("design", cmd_design, "append an initial design of planned runs to runs.csv")
     s.add_argument("--method", default="space-filling", choices=METHODS)
     s.add_argument("--runs", type=int, help="number of runs (space-filling, sobol)")
-    s.add_argument("--centre", type=int, default=0, help="extra replicated centre runs")
+    s.add_argument("--centre", type=int,
+                   help="extra replicated centre runs (default 1 for box-behnken and rotatable ccd, else 0)")
     s.add_argument("--seed", type=int, help="random seed (default: the study's)")
     s = verb("fit", cmd_fit, "fit one model per response and print leave-one-out diagnostics")
     s.add_argument("--model", default="gp", choices=("gp", "quadratic"))
     s.add_argument("--restarts", type=int, default=5, help="optimizer restarts for the GP")
-    for extra in _EXTRA_VERBS:
-        extra(verb)
+    s = verb("window", cmd_window, "find the largest window where every limit holds with confidence")
+    s.add_argument("--confidence", type=float, help="default: the study's confidence")
+    s.add_argument("--set-point", nargs="+", metavar="NAME=VALUE",
+                   help="widest symmetric ranges around this set point (give every factor)")
+    s.add_argument("--mean", action="store_true",
+                   help="judge the process mean instead of each new run (excludes run-to-run noise)")
+    s = verb("tradeoff", cmd_tradeoff, "find the best trade-off between the goals inside the limits")
+    s.add_argument("--confidence", type=float, help="default: the study's confidence")
+    s.add_argument("--pick", choices=("knee", "desirability"), default="knee",
+                   help="how the balanced pick is chosen")
+    s.add_argument("--mean", action="store_true", help="chance constraint on the process mean")
+    s = verb("testplan", cmd_testplan, "plan verification runs inside the window")
+    s.add_argument("--runs", type=int, help="number of runs (default: centre x3 + corners)")
+    s.add_argument("--confidence", type=float, help="default: the study's confidence")
+    s = verb("verify", cmd_verify, "judge a filled-in test plan and append its runs to runs.csv")
+    s.add_argument("file", metavar="FILE", help="the filled-in testplan.csv")
     return p
 
 
-_EXTRA_VERBS: list = []  # later steps register their verbs here (window, tradeoff, ...)
+#: Verbs the demo runs after fit, with their options.
+DEMO_VERBS: list = [["window"], ["tradeoff"], ["testplan"]]
 
 
 def main(argv=None) -> int:

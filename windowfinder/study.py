@@ -113,10 +113,16 @@ class Study:
         return Study.load(self.dir, self.runs_path.name)
 
     # -- designs ---------------------------------------------------------------------------------
-    def design(self, method: str, runs: int | None = None, centre: int = 0,
+    def design(self, method: str, runs: int | None = None, centre: int | None = None,
                seed: int | None = None) -> pd.DataFrame:
-        """A new design in natural units, rounded to each step, in randomised run order."""
+        """A new design in natural units, rounded to each step, in randomised run order.
+
+        ``centre=None`` adds one centre run to Box–Behnken and rotatable central composite designs,
+        which cannot support a full quadratic model without one, and none to the others.
+        """
         seed = self.spec.seed if seed is None else seed
+        if centre is None:
+            centre = 1 if method in ("box-behnken", "ccd-inscribed", "ccd-circumscribed") else 0
         U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
         X = self.spec.round_to_step(self.spec.to_natural(U)) if method != "ccd-circumscribed" \
             else self.spec.to_natural(U)

@@ -1,0 +1,244 @@
+"""The answers an engineer takes to scale-up, in natural units: the process window and the trade-off.
+
+This module turns the coded-unit results of :mod:`windowfinder.window` and :mod:`windowfinder.tradeoff`
+into natural units with units attached, adds the predicted response ranges and the cautions, and says
+plainly when the models behind an answer should not be trusted.
+"""
+
+from __future__ import annotations
+
+from dataclasses import asdict, dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy.stats import qmc
+
+from .errors import InputError
+from .feasibility import Feasibility
+from .spec import StudySpec
+
+CAUTION_GENERAL = ("A window is a statistical estimate from limited tests, not a safety assessment; "
+                   "confirm it with verification runs before relying on it.")
+CAUTION_SAFETY = ("Safety limit involved ({names}): settings near it need the site's hazard review and "
+                  "process-safety procedures; scale-up changes heat and mass transfer, so confirm with "
+                  "verification runs at scale; local codes and a qualified, licensed engineer decide.")
+
+
+def limits_of(spec: StudySpec) -> list[tuple]:
+    """``(response, min, max)`` for every limited response, safety limits first."""
+    return [(r.name, r.min, r.max) for r in spec.limited]
+
+
+def feasibility_of(spec: StudySpec, fit, mean_only: bool = False) -> Feasibility:
+    return Feasibility(limits_of(spec), fit.surrogates, fit.X_runs, mean_only=mean_only)
+
+
+def objectives_of(spec: StudySpec, surrogates):
+    """Goals as one vectorised function to minimise: maximize -> -Y, minimize -> Y, target -> |Y - t|.
+
+    Y is the model's predicted median in natural units (the inverse transform of the latent mean).
+    """
+    goals = spec.goals
+    if not goals:
+        raise InputError(f"{spec.source}: no response has a goal; set goal = 'maximize', 'minimize' "
+                         "or 'target' on at least one")
+
+    def fn(X):
+        cols = []
+        for r in goals:
+            m = surrogates.models[r.name]
+            y = m.transform_.inverse(m.predict(X, return_std=False))
+            y = np.asarray(y[0] if isinstance(y, tuple) else y, dtype=float)
+            cols.append(-y if r.goal == "maximize" else y if r.goal == "minimize"
+                        else np.abs(y - r.target))
+        return np.column_stack(cols)
+
+    return fn, [r.name for r in goals]
+
+
+def cautions(spec: StudySpec, fit, untrusted_share: float | None = None,
+             mean_only: bool = False) -> list[str]:
+    """Plain-language cautions; the safety caution comes first when a safety limit is involved."""
+    out = []
+    safety = [r.name for r in spec.limited if r.is_safety]
+    if safety:
+        out.append(CAUTION_SAFETY.format(names=", ".join(safety)))
+    out.append(CAUTION_GENERAL)
+    for d in fit.diagnostics:
+        r = spec.response(d.response)
+        if r.has_limits and d.loo_q2 < 0.5:
+            out.append(f"The model of {d.response} is poor (LOO Q2 = {d.loo_q2:.2f}): its limit is "
+                       "judged mostly by wide uncertainty; add runs before trusting this window.")
+        elif r.has_limits and d.n >= 10 and not 0.8 <= d.coverage95 <= 1.0:
+            out.append(f"The 95 % intervals of {d.response} covered {d.coverage95:.0%} of held-out runs: "
+                       "its probabilities are miscalibrated.")
+    if untrusted_share is not None and untrusted_share > 0:
+        out.append(f"{untrusted_share:.0%} of the window is far from every run or too uncertain to "
+                   "trust; place verification runs there.")
+    if mean_only:
+        out.append("Probabilities are for the process mean (--mean), not for each new batch: "
+                   "run-to-run scatter can still break a limit.")
+    return out
+
+
+@dataclass
+class ProcessWindow:
+    """The largest window at the stated confidence, in natural units."""
+
+    found: bool
+    confidence: float
+    min_probability: float
+    factors: list[dict]
+    predicted: list[dict]
+    cautions: list[str]
+    message: str = ""
+    worst_point: dict = field(default_factory=dict)
+    best_probability: float | None = None
+    best_point: dict = field(default_factory=dict)
+    set_point: dict | None = None
+    untrusted_share: float | None = None
+    volume_share: float = 0.0
+    mean_only: bool = False
+    diagnostics: list[dict] = field(default_factory=list)
+    safety: bool = False
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def to_frame(self) -> pd.DataFrame:
+        return pd.DataFrame(self.factors)
+
+    def coded_box(self, spec: StudySpec, guard: bool = False):
+        lo = [f["guard_low" if guard else "low"] for f in self.factors]
+        hi = [f["guard_high" if guard else "high"] for f in self.factors]
+        return spec.to_coded(lo)[0], spec.to_coded(hi)[0]
+
+
+def _point(spec: StudySpec, u) -> dict:
+    if u is None:
+        return {}
+    x = spec.to_natural(np.asarray(u, dtype=float))[0]
+    return {f.name: float(v) for f, v in zip(spec.factors, x)}
+
+
+def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int = 256) -> list[dict]:
+    """Range of each response's predicted median, and of its 95 % prediction interval, over a box."""
+    d = spec.d
+    U = qmc.Sobol(d, scramble=True, seed=seed).random(n)
+    corners = np.array(np.meshgrid(*[[0.0, 1.0]] * d)).reshape(d, -1).T if d <= 8 else np.empty((0, d))
+    U = lo + np.vstack([U, corners, np.full((1, d), 0.5)]) * (hi - lo)
+    out = []
+    for r in spec.responses:
+        med, lo95, hi95 = surrogates.models[r.name].predict_interval(U, level=0.95, noise=True)
+        out.append({"response": r.name, "unit": r.unit, "low": float(np.min(med)),
+                    "high": float(np.max(med)), "pi95_low": float(np.min(lo95)),
+                    "pi95_high": float(np.max(hi95)), "limit": r.limit_text(), "kind": r.kind})
+    return out
+
+
+def build_window(spec: StudySpec, fit, confidence: float | None = None, set_point: dict | None = None,
+                 mean_only: bool = False, seed: int | None = None) -> ProcessWindow:
+    """Find the largest window and express it in natural units (see :func:`window.find_window`)."""
+    from .window import find_window
+
+    confidence = spec.confidence if confidence is None else float(confidence)
+    if not 0.0 < confidence < 1.0:
+        raise InputError(f"--confidence {confidence:g}: must lie strictly between 0 and 1, e.g. 0.95")
+    seed = spec.seed if seed is None else seed
+    feas = feasibility_of(spec, fit, mean_only)
+    sp = None
+    if set_point is not None:
+        missing = [f for f in spec.factor_names if f not in set_point]
+        if missing:
+            raise InputError(f"--set-point: give every factor (missing: {', '.join(missing)})")
+        sp = spec.to_coded([set_point[f] for f in spec.factor_names])[0]
+        if ((sp < 0) | (sp > 1)).any():
+            raise InputError("--set-point: a value lies outside the factor's low..high in study.toml")
+    res = find_window(feas.joint, spec.d, confidence, tolerance=spec.tolerances_coded, set_point=sp,
+                      seed=seed)
+    diags = [d.to_dict() for d in fit.diagnostics]
+    common = dict(confidence=confidence, diagnostics=diags, mean_only=mean_only, safety=spec.has_safety,
+                  best_probability=float(res.best_probability) if res.best_probability is not None
+                  else None, best_point=_point(spec, res.best_point), set_point=set_point)
+    if not res.found:
+        return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
+                             predicted=[], cautions=cautions(spec, fit, None, mean_only),
+                             message=res.message, **common)
+    lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
+    glo_n, ghi_n = spec.to_natural(res.guard_lower)[0], spec.to_natural(res.guard_upper)[0]
+    factors = [{"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
+                "guard_low": float(c), "guard_high": float(e), "tolerance": f.tolerance}
+               for f, a, b, c, e in zip(spec.factors, lo_n, hi_n, glo_n, ghi_n)]
+    glo, ghi = np.asarray(res.guard_lower), np.asarray(res.guard_upper)
+    inside = glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512) * (ghi - glo)
+    share = float(feas.evaluate(inside, max(confidence, 0.5 + 1e-9)).untrusted.mean())
+    return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
+                         predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
+                         cautions=cautions(spec, fit, share, mean_only), message=res.message,
+                         worst_point=_point(spec, res.worst_point), untrusted_share=share,
+                         volume_share=float(res.volume), **common)
+
+
+@dataclass
+class TradeoffTable:
+    """The constrained trade-off set in natural units, with a marked balanced pick."""
+
+    frame: pd.DataFrame
+    found: bool
+    pick_method: str
+    message: str
+    confidence: float
+    cautions: list[str]
+
+    def to_frame(self) -> pd.DataFrame:
+        return self.frame.copy()
+
+    def to_dict(self) -> dict:
+        return {"found": self.found, "pick_method": self.pick_method, "message": self.message,
+                "confidence": self.confidence, "cautions": self.cautions,
+                "points": self.frame.to_dict("records")}
+
+    @property
+    def pick(self) -> pd.Series | None:
+        p = self.frame[self.frame["balanced_pick"]]
+        return p.iloc[0] if len(p) else None
+
+
+def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_only: bool = False,
+                   pick: str = "knee", seed: int | None = None, **search) -> TradeoffTable:
+    """Constrained multi-objective search on the models (see :func:`tradeoff.find_tradeoff`)."""
+    from .tradeoff import find_tradeoff
+
+    confidence = spec.confidence if confidence is None else float(confidence)
+    seed = spec.seed if seed is None else seed
+    obj_fn, names = objectives_of(spec, fit.surrogates)
+    prob_fn = feasibility_of(spec, fit, mean_only).joint if spec.limited else \
+        (lambda X: np.ones(len(X)))
+    goals = None
+    if pick == "desirability":
+        goals = _desirability_goals(spec, fit)
+    res = find_tradeoff(obj_fn, prob_fn, spec.d, confidence, len(names), seed=seed, pick=pick,
+                        desirability=goals, **search)
+    X = spec.round_to_step(spec.to_natural(res.X)) if len(res.X) else np.empty((0, spec.d))
+    frame = pd.DataFrame(X, columns=spec.factor_names)
+    if len(X):
+        U = spec.to_coded(X)
+        for r in spec.responses:
+            med, lo, hi = fit.surrogates.models[r.name].predict_interval(U, level=0.95, noise=True)
+            frame[f"{r.name}_pred"], frame[f"{r.name}_lo95"], frame[f"{r.name}_hi95"] = med, lo, hi
+        frame["p_all_limits"] = prob_fn(U)
+    frame["balanced_pick"] = np.arange(len(frame)) == res.pick
+    return TradeoffTable(frame, bool(res.found), res.pick_method, res.message, confidence,
+                         cautions(spec, fit, None, mean_only))
+
+
+def _desirability_goals(spec: StudySpec, fit) -> list[dict]:
+    """Derringer & Suich (1980) ranges for each goal: limits where given, else the observed range."""
+    goals = []
+    for r in spec.goals:
+        m = fit.surrogates.models[r.name]
+        seen = m.transform_.inverse(np.asarray(m.z_train_ if hasattr(m, "z_train_") else [0.0, 1.0]))
+        low = r.min if r.min is not None else float(np.min(seen))
+        high = r.max if r.max is not None else float(np.max(seen))
+        goals.append({"goal": r.goal, "low": low, "high": high, "target": r.target, "weight": 1.0})
+    return goals

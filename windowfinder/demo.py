@@ -1,0 +1,73 @@
+"""``make demo``: the main job end to end on a bundled case.
+
+new (example reactor) -> design (space-filling) -> run the planned runs on the case's simulator ->
+fit -> window -> trade-off -> next runs -> test plan -> report, printing where every output is.
+Usage: ``python -m windowfinder.demo [FOLDER] [--case NAME]``.
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import sys
+from pathlib import Path
+
+import pandas as pd
+
+from . import cli
+from .cases import RunFailed, load_simulator
+
+
+def simulate_planned(study, case: str, seed: int) -> None:
+    """Stand-in for the lab: run every planned run of ``study`` on the case's simulator."""
+    sim = load_simulator(case)
+    rows = []
+    for i, rec in enumerate(study.runs.planned().to_dict("records")):
+        settings = {f: rec[f] for f in study.spec.factor_names}
+        try:
+            res = sim.evaluate(settings, seed=seed * 100_003 + i)
+            rows.append({"run": rec["run"], **res, "status": "done", "note": "simulated"})
+        except RunFailed as e:
+            rows.append({"run": rec["run"], "status": "failed", "note": f"simulated: {e.reason}"})
+    study.record_results(pd.DataFrame(rows))
+
+
+def step(title: str, argv: list[str]) -> None:
+    print(f"\n$ windowfinder {' '.join(argv)}", flush=True)
+    code = cli.main(argv)
+    if code != 0:
+        sys.exit(code)
+
+
+def main(argv=None) -> int:
+    p = argparse.ArgumentParser(prog="python -m windowfinder.demo")
+    p.add_argument("folder", nargs="?", default="demo-study")
+    p.add_argument("--case", default="reactor")
+    p.add_argument("--runs", type=int, default=16)
+    args = p.parse_args(argv)
+    folder = Path(args.folder)
+    if folder.exists():
+        if not (folder / ".windowfinder-demo").exists():
+            print(f"{folder} exists and is not a demo folder; choose another", file=sys.stderr)
+            return 2
+        shutil.rmtree(folder)
+    step("new", ["new", str(folder), "--example", args.case])
+    (folder / ".windowfinder-demo").write_text("created by make demo; safe to delete\n")
+    step("design", ["design", str(folder), "--method", "space-filling", "--runs", str(args.runs),
+                    "--centre", "2"])
+    from .study import Study
+
+    study = Study.load(folder)
+    print(f"\n(simulating the {len(study.runs.planned())} planned runs with the '{args.case}' simulator "
+          "in place of the lab)")
+    simulate_planned(study, args.case, study.spec.seed)
+    step("check", ["check", str(folder)])
+    step("fit", ["fit", str(folder)])
+    for verb in cli.DEMO_VERBS:
+        step(verb[0], [verb[0], str(folder), *verb[1:]])
+    print(f"\noutputs are in {folder.resolve() / 'out'}")
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,112 @@
+"""Writers: window spec (json, md), trade-off table and test plan (csv). They never fit models.
+
+Every file is written atomically; CSV cells are neutralised against spreadsheet formula injection.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .runs import format_rows, write_atomic
+
+
+def _clean(obj):
+    """JSON-safe copy: numpy scalars to Python, non-finite floats to None."""
+    if isinstance(obj, dict):
+        return {str(k): _clean(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_clean(v) for v in obj]
+    if isinstance(obj, np.ndarray):
+        return _clean(obj.tolist())
+    if isinstance(obj, (np.bool_, bool)):
+        return bool(obj)
+    if isinstance(obj, (np.integer,)):
+        return int(obj)
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if math.isfinite(float(obj)) else None
+    return obj
+
+
+def write_json(path, data) -> Path:
+    write_atomic(path, json.dumps(_clean(data), indent=2, allow_nan=False) + "\n")
+    return Path(path)
+
+
+def write_csv(path, frame: pd.DataFrame) -> Path:
+    header = [str(c) for c in frame.columns]
+    write_atomic(path, ",".join(header) + "\n" + format_rows(frame, header))
+    return Path(path)
+
+
+def _g(v, digits: int = 4) -> str:
+    return "-" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:.{digits}g}"
+
+
+def window_table(win) -> str:
+    """Plain-text table of the window's factor ranges (for the terminal)."""
+    if not win.found:
+        return f"no window: {win.message}"
+    lines = [f"{'factor':<16} {'low':>10} {'high':>10}  {'unit':<8} guard band (with tolerance)"]
+    for f in win.factors:
+        guard = (f"{_g(f['guard_low'])} .. {_g(f['guard_high'])}" if f.get("tolerance") else "-")
+        lines.append(f"{f['name']:<16} {_g(f['low']):>10} {_g(f['high']):>10}  {f['unit']:<8} {guard}")
+    lines.append(f"lowest P(all limits met) inside: {win.min_probability:.3f} "
+                 f"(confidence {win.confidence:g})")
+    return "\n".join(lines)
+
+
+def window_markdown(win, study_name: str) -> str:
+    """window.md: the same content as window.json, for people."""
+    out = [f"# Process window — {study_name}", ""]
+    if win.safety:
+        out += ["> **Caution.** " + win.cautions[0], ""]
+    if not win.found:
+        out += [f"**No window reaches the confidence {win.confidence:g}.** {win.message}", ""]
+        if win.best_point:
+            out += ["Best point found: " + ", ".join(f"{k} = {_g(v)}" for k, v in win.best_point.items())
+                    + f" (P = {_g(win.best_probability, 3)})", ""]
+    else:
+        basis = "the process mean" if win.mean_only else "each new run (model uncertainty + run-to-run noise)"
+        out += [f"Confidence {win.confidence:g}: every setting inside these ranges meets all limits with "
+                f"probability at least **{win.min_probability:.3f}**, for {basis}.", "",
+                "| factor | low | high | unit | tolerance | guard band |", "|---|---|---|---|---|---|"]
+        for f in win.factors:
+            out.append(f"| {f['name']} | {_g(f['low'])} | {_g(f['high'])} | {f['unit']} | "
+                       f"± {_g(f['tolerance'])} | {_g(f['guard_low'])} – {_g(f['guard_high'])} |")
+        out += ["", "Lowest probability at: " + ", ".join(
+            f"{k} = {_g(v)}" for k, v in win.worst_point.items()), "",
+            "## Predicted responses inside the window (guard band included)", "",
+            "| response | limit | predicted | 95 % prediction interval | unit |", "|---|---|---|---|---|"]
+        for p in win.predicted:
+            out.append(f"| {p['response']}{' (safety)' if p['kind'] == 'safety' else ''} | {p['limit']} | "
+                       f"{_g(p['low'])} – {_g(p['high'])} | {_g(p['pi95_low'])} – {_g(p['pi95_high'])} | "
+                       f"{p['unit']} |")
+        if win.untrusted_share is not None:
+            out += ["", f"Share of the window flagged untrusted (far from runs or too uncertain): "
+                        f"{win.untrusted_share:.0%}."]
+    if win.diagnostics:
+        out += ["", "## Models", "", "| response | model | runs | LOO Q² | LOO RMSE | 95 % coverage |",
+                "|---|---|---|---|---|---|"]
+        for d in win.diagnostics:
+            out.append(f"| {d['response']} | {d['model']} | {d['n']} | {_g(d['loo_q2'], 3)} | "
+                       f"{_g(d['loo_rmse'], 3)} | {_g(100 * d['coverage95'], 3)} % |")
+    out += ["", "## Cautions", ""] + [f"- {c}" for c in win.cautions]
+    return "\n".join(out) + "\n"
+
+
+def write_window(out_dir, win, study_name: str) -> list[Path]:
+    out_dir = Path(out_dir)
+    out_dir.mkdir(parents=True, exist_ok=True)
+    data = win.to_dict()
+    data = {"found": data.pop("found"), "confidence": data.pop("confidence"),
+            "min_probability": data.pop("min_probability"), "factors": data.pop("factors"),
+            "predicted": data.pop("predicted"), "cautions": data.pop("cautions"), **data}
+    p1 = write_json(out_dir / "window.json", data)
+    p2 = out_dir / "window.md"
+    write_atomic(p2, window_markdown(win, study_name))
+    return [p1, p2]
