@@ -124,8 +124,12 @@ class Study:
         if centre is None:
             centre = 1 if method in ("box-behnken", "ccd-inscribed", "ccd-circumscribed") else 0
         U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
-        X = self.spec.round_to_step(self.spec.to_natural(U)) if method != "ccd-circumscribed" \
-            else self.spec.to_natural(U)
+        if method == "ccd-circumscribed":  # axial runs beyond the bounds on purpose: keep them exact
+            X = self.spec.to_natural(U)
+        elif method == "space-filling":
+            X = self._snap_in_strata(U, len(U) - centre)
+        else:
+            X = self.spec.round_to_step(self.spec.to_natural(U))
         order = np.random.default_rng(seed).permutation(len(X))
         X = X[order]
         frame = pd.DataFrame(X, columns=self.spec.factor_names)
@@ -135,6 +139,27 @@ class Study:
         frame["status"] = "planned"
         frame["note"] = f"design {method}"
         return frame
+
+    def _snap_in_strata(self, U: np.ndarray, n: int) -> np.ndarray:
+        """Round a Latin hypercube to each factor's step without leaving any point's stratum.
+
+        Plain rounding can push a point into a neighbouring stratum and break the one-point-per-stratum
+        property (McKay, Beckman & Conover 1979); here each value moves to the nearest step multiple
+        inside its own stratum, or stays unrounded when the stratum holds no multiple.
+        """
+        X = self.spec.to_natural(U)
+        for j, f in enumerate(self.spec.factors):
+            if not f.step:
+                continue
+            for i in range(n):
+                s = min(int(np.floor(U[i, j] * n)), n - 1)
+                a, b = f.low + s / n * f.span, f.low + (s + 1) / n * f.span
+                grid = np.arange(np.ceil(a / f.step - 1e-9), np.floor(b / f.step + 1e-9) + 1) * f.step
+                grid = grid[(grid >= a) & ((grid < b) | (s == n - 1)) & (grid <= f.high)]
+                if len(grid):
+                    X[i, j] = np.round(grid[np.argmin(np.abs(grid - X[i, j]))], 10)
+            X[n:, j] = f.round(X[n:, j])
+        return X
 
     def add_runs(self, frame: pd.DataFrame) -> None:
         """Append rows (e.g. a design or suggestions) to the run table atomically."""
