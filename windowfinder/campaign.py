@@ -1,0 +1,445 @@
+"""The closed loop: propose runs, evaluate them in parallel, record each result, refit, repeat.
+
+A campaign drives a study folder until ``runs.csv`` holds ``budget`` completed (done + failed) runs:
+
+1. planned rows already in ``runs.csv`` are issued first (a crashed campaign resumes with them, so no run
+   is duplicated and run ids stay unique);
+2. while fewer than ``initial`` runs are completed, a space-filling design tops them up;
+3. then batches of ``batch`` proposals (by default ``study.suggest``, which refits the models) follow.
+
+Every issued batch is appended to ``runs.csv`` as ``planned`` rows before any run starts; every finished
+run rewrites the table atomically at once (planned -> done/failed), so a crash loses at most the runs in
+flight, which the next campaign re-issues. Before every write the file is read again: rows another
+editor added or changed meanwhile are kept, a run another editor already filled in is not overwritten,
+and a table made invalid by another editor is never written over (the campaign stops and parks the result
+in ``out/unsaved-runs.csv``). There is no file lock: an editor saving in the same instant can still race.
+
+Runs are evaluated on a local pool (threads for a command, which is a process of its own; processes for a
+Python function) or on a Dask distributed cluster (an existing scheduler, or a local cluster started for
+the campaign), taking each result as it completes.
+"""
+
+from __future__ import annotations
+
+import math
+import sys
+import time
+import zlib
+from collections.abc import Callable, Mapping
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+
+from .errors import InputError
+from .evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, check_count, make_engine, one_line
+from .runs import append_runs, format_rows, next_ids, read_runs, write_atomic, write_runs
+from .study import Study
+
+AIMS = ("window", "tradeoff", "balanced")
+UNSAVED = "unsaved-runs.csv"
+
+
+def suggest_runs(study: Study, count: int, aim: str) -> pd.DataFrame:
+    """Default proposer: ``study.suggest(count, aim=aim).frame`` (refits the models on the current runs)."""
+    return study.suggest(count, aim=aim).frame
+
+
+def run_seed(study_seed: int, run: str) -> int:
+    """Seed of one run, fixed by the study seed and the run id (CRC-32 of both)."""
+    return zlib.crc32(f"{study_seed}:{run}".encode())
+
+
+def default_initial(d: int, budget: int) -> int:
+    """Initial space-filling runs: ``10 d`` (Loeppky, Sacks & Welch 2009, Technometrics 51(4)), but at
+    most half the budget and at least ``d + 2``, never more than the budget."""
+    return min(budget, max(d + 2, min(10 * d, budget // 2)))
+
+
+@dataclass
+class CampaignResult:
+    """What a campaign did.
+
+    Attributes
+    ----------
+    budget : int
+    runs_done : int
+        Completed (done + failed) runs in runs.csv at the end.
+    failed : int
+        Failed runs in runs.csv at the end.
+    evaluated : int
+        Runs evaluated by this call.
+    batches : int
+        Batches issued by this call (re-issued planned rows and the initial design count as batches).
+    elapsed : float
+        Wall-clock seconds.
+    stopped : str
+        Why the loop ended.
+    history : list of dict
+        One entry per batch: ``batch``, ``source``, ``issued``, ``runs_done``, ``failed``, ``elapsed``
+        and one key per progress metric.
+    conflicts : list of str
+        Results not written because another editor had already filled in the run.
+    """
+
+    budget: int
+    runs_done: int = 0
+    failed: int = 0
+    evaluated: int = 0
+    batches: int = 0
+    elapsed: float = 0.0
+    stopped: str = ""
+    history: list = field(default_factory=list)
+    conflicts: list = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+    def to_frame(self) -> pd.DataFrame:
+        return pd.DataFrame(self.history)
+
+
+class CampaignStopped(RuntimeError):
+    """The evaluation engine broke (e.g. a worker process died); rerun the same command to continue."""
+
+
+# -- runs.csv as the campaign sees it ------------------------------------------------------------------
+class RunLedger:
+    """runs.csv for a campaign: re-read before every write, other editors' changes kept, writes atomic.
+
+    Parameters
+    ----------
+    study : Study
+        The loaded study; ``study.runs`` is kept up to date with the file.
+    """
+
+    def __init__(self, study: Study):
+        self.study = study
+        self.path = Path(study.runs_path)
+        if self.path.suffix.lower() != ".csv":
+            raise InputError(f"{self.path.name}: a campaign records runs in a CSV run table; save the "
+                             "runs as runs.csv (nothing was changed)")
+        self._seen = self._bytes()
+        self.issued: dict[str, dict] = {}
+        self.conflicts: list[str] = []
+
+    def _bytes(self) -> bytes | None:
+        return self.path.read_bytes() if self.path.exists() else None
+
+    def refresh(self) -> Study:
+        """Re-read runs.csv if anyone changed it since the campaign last read or wrote it."""
+        now = self._bytes()
+        if now != self._seen:
+            self.study.runs = read_runs(self.path, self.study.spec)
+            self._seen = now
+        return self.study
+
+    def _wrote(self) -> None:
+        self._seen = self._bytes()
+        self.study.runs = read_runs(self.path, self.study.spec)
+
+    def add(self, frame: pd.DataFrame) -> pd.DataFrame:
+        """Append rows as ``planned`` with fresh run ids; returns them as written."""
+        study = self.refresh()
+        taken = [*study.runs.frame["run"].astype(str), *self.issued]
+        frame = frame.copy()
+        frame["run"] = next_ids(taken, len(frame))
+        frame["status"] = "planned"
+        append_runs(self.path, study.spec, frame)
+        self._wrote()
+        for rec in frame.to_dict("records"):
+            self.issued[rec["run"]] = rec
+        return frame
+
+    def record(self, outcome: RunOutcome) -> str:
+        """Write one result into runs.csv (atomic rewrite); returns the status written or 'conflict'."""
+        spec = self.study.spec
+        try:
+            study = self.refresh()
+        except InputError as e:
+            where = self._park(outcome)
+            raise InputError(f"{self.path.name} was changed by another editor and is no longer valid "
+                             f"({e}); the campaign stopped without touching it; fix it and rerun "
+                             f"(the result of run {outcome.run} is in {where})") from None
+        frame = study.runs.frame.copy()
+        rows = frame.index[frame["run"].astype(str) == outcome.run]
+        if len(rows) and frame.loc[rows[0], "status"] != "planned":
+            self.conflicts.append(f"run {outcome.run}: already {frame.loc[rows[0], 'status']} in "
+                                  f"{self.path.name} (another editor); campaign result not written")
+            return "conflict"
+        if not len(rows):  # another editor removed the planned row; the run happened, so record it
+            rec = dict(self.issued.get(outcome.run, {"run": outcome.run}))
+            rec["note"] = one_line("; ".join(filter(None, [str(rec.get("note", "") or ""),
+                                                            "row re-added by the campaign"])))
+            frame = pd.concat([frame, pd.DataFrame([rec])], ignore_index=True)
+            rows = frame.index[frame["run"].astype(str) == outcome.run]
+        i = rows[0]
+        values, note = admissible(spec, outcome)
+        for name, v in values.items():
+            frame.loc[i, name] = v
+        old = frame.loc[i, "note"]
+        old = "" if not isinstance(old, str) else old
+        frame.loc[i, "note"] = one_line("; ".join(filter(None, [old, note])))
+        frame.loc[i, "status"] = outcome.status
+        write_runs(self.path, spec, frame)
+        self._wrote()
+        return outcome.status
+
+    def _park(self, outcome: RunOutcome) -> Path:
+        """Append a result that could not be written to runs.csv to ``out/unsaved-runs.csv``."""
+        path = self.study.out / UNSAVED
+        rec = {**self.issued.get(outcome.run, {}), **outcome.responses, "run": outcome.run,
+               "status": outcome.status, "note": outcome.note}
+        header = ["run", *self.study.spec.factor_names, *self.study.spec.response_names, "status", "note"]
+        old = path.read_text(encoding="utf-8") if path.exists() else ",".join(header) + "\n"
+        write_atomic(path, old + format_rows(pd.DataFrame([rec]), header))
+        return path
+
+
+def admissible(spec, outcome: RunOutcome) -> tuple[dict, str]:
+    """Response values the run table accepts, and the run's note.
+
+    A value outside the range a response's transform allows (``log``: > 0 or above its lower bound;
+    ``logit``: strictly inside its bounds) would make runs.csv unreadable; it is kept as "not measured"
+    and named in the note.
+    """
+    values, notes = {}, [outcome.note]
+    for r in spec.responses:
+        v = outcome.responses.get(r.name)
+        if v is None:
+            continue
+        lo, hi = r.bounds if r.bounds else (0.0, math.inf)
+        bad = (r.transform == "logit" and not lo < v < hi) or (r.transform == "log" and not v > lo)
+        if bad:
+            notes.append(f"{r.name} = {v:g} rejected (transform '{r.transform}' needs values inside "
+                         f"({lo:g}, {hi:g}))")
+        else:
+            values[r.name] = v
+    return values, "; ".join(filter(None, notes))
+
+
+# -- the loop ---------------------------------------------------------------------------------------
+class Campaign:
+    """Closed-loop campaign on a study folder.
+
+    Parameters
+    ----------
+    evaluator : callable
+        ``evaluator(run, settings, seed) -> RunOutcome``, e.g. a
+        :class:`~windowfinder.evaluators.CommandEvaluator` or
+        :class:`~windowfinder.evaluators.FunctionEvaluator`; it must be picklable for a process pool or Dask.
+    budget : int
+        Completed (done + failed) runs runs.csv shall hold at the end; never exceeded.
+    initial : int or None
+        Completed runs before proposals start; missing ones come from a space-filling design.
+        Default :func:`default_initial`.
+    batch : int
+        Runs per proposal round.
+    aim : {"window", "tradeoff", "balanced"}
+        Passed to the proposer.
+    propose : callable or None
+        ``propose(study, count, aim) -> DataFrame`` with one natural-unit column per factor (an optional
+        ``note`` column is kept); default :func:`suggest_runs`. Settings are rounded to each factor's
+        step and clipped to its bounds; run ids are assigned here.
+    engine : context manager or None
+        From :func:`make_engine`; default a local pool of ``os.cpu_count()`` workers.
+    metrics : mapping of str to callable, optional
+        ``name -> fn(study) -> float | None`` shown after each batch (e.g. ``"window volume"``,
+        ``"front hypervolume"``) and kept in the history. A metric that raises is shown as n/a.
+    progress : callable or None
+        Receives one line of text per event; default prints to stderr.
+    """
+
+    def __init__(self, evaluator: Callable, budget: int, initial: int | None = None, batch: int = 1,
+                 aim: str = "balanced", propose: Callable | None = None, engine=None,
+                 metrics: Mapping[str, Callable] | None = None,
+                 progress: Callable[[str], None] | None = None):
+        self.evaluator = evaluator
+        self.budget = budget
+        self.initial = initial
+        self.batch = batch
+        self.aim = aim
+        self.propose = propose
+        self.engine = engine
+        self.metrics = metrics
+        self.progress = progress
+
+    def _say(self, line: str) -> None:
+        if self.progress is None:
+            print(line, file=sys.stderr, flush=True)
+        else:
+            self.progress(line)
+
+    def run(self, study_dir) -> CampaignResult:
+        """Run the campaign on ``study_dir`` until runs.csv holds ``budget`` completed runs."""
+        t0 = time.monotonic()
+        check_count("--budget", self.budget, 1)
+        check_count("--batch", self.batch, 1)
+        if self.aim not in AIMS:
+            raise InputError(f"--aim '{self.aim}': choose one of {', '.join(AIMS)}")
+        study = Study.load(study_dir)
+        initial = default_initial(study.spec.d, self.budget) if self.initial is None else self.initial
+        check_count("--initial", initial, 0)
+        ledger = RunLedger(study)
+        res = CampaignResult(budget=self.budget)
+        engine = self.engine if self.engine is not None else make_engine(self.evaluator)
+        with engine:
+            while True:
+                study = ledger.refresh()
+                runs = study.runs
+                room = self.budget - len(runs.completed())
+                if room <= 0:
+                    res.stopped = f"budget reached: {len(runs.completed())} completed runs"
+                    break
+                rows, source = self._next_rows(ledger, study, room, initial)
+                if rows is None:
+                    res.stopped = "the proposer gave no new runs"
+                    break
+                self._say(f"batch {res.batches + 1}: {len(rows)} run(s) ({source})")
+                self._evaluate(engine, ledger, rows, res)
+                res.batches += 1
+                res.history.append(self._snapshot(ledger.study, res, source, len(rows), t0))
+        runs = ledger.refresh().runs
+        res.runs_done, res.failed = len(runs.completed()), len(runs.failed())
+        res.conflicts = list(ledger.conflicts)
+        res.elapsed = time.monotonic() - t0
+        self._say(f"campaign finished: {res.runs_done}/{self.budget} runs ({res.failed} failed); "
+                  f"{res.stopped}")
+        return res
+
+    def _next_rows(self, ledger: RunLedger, study: Study, room: int, initial: int):
+        planned = study.runs.planned()
+        if len(planned):
+            return planned.head(room), "planned rows re-issued"
+        need = min(initial, self.budget) - len(study.runs.completed())
+        if need > 0:
+            return ledger.add(study.design("space-filling", runs=need)), "space-filling design"
+        q = min(self.batch, room)
+        propose = self.propose or suggest_runs
+        frame = _proposals(study, propose(study, q, self.aim), q, self.aim)
+        if frame.empty:
+            return None, ""
+        return ledger.add(frame), f"proposed, aim {self.aim}"
+
+    def _evaluate(self, engine, ledger: RunLedger, rows: pd.DataFrame, res: CampaignResult) -> None:
+        spec = ledger.study.spec
+        pending = {}
+        for rec in rows.to_dict("records"):
+            run = str(rec["run"])
+            ledger.issued.setdefault(run, rec)
+            settings = {f: float(rec[f]) for f in spec.factor_names}
+            pending[engine.submit(self.evaluator, run, settings, run_seed(spec.seed, run))] = run
+        for fut in engine.as_completed(pending):
+            run = pending[fut]
+            try:
+                outcome = fut.result()
+            except Exception as e:
+                if type(e).__name__ != "KilledWorker":  # Dask: the task itself kept killing workers
+                    raise CampaignStopped(f"evaluation of run {run} broke the engine ({type(e).__name__}: "
+                                          f"{one_line(e, 160)}); runs not finished stay planned in "
+                                          "runs.csv; rerun the same command to continue") from e
+                outcome = RunOutcome.failed(run, "the run killed its worker process repeatedly")
+            if not isinstance(outcome, RunOutcome) or outcome.run != run:
+                raise TypeError(f"the evaluator returned {outcome!r} for run {run}; expected a RunOutcome "
+                                "of that run")
+            status = ledger.record(outcome)
+            res.evaluated += 1
+            done = len(ledger.study.runs.completed())
+            note = f" ({outcome.note})" if outcome.note else ""
+            self._say(f"run {run}: {status}{note} - {done}/{self.budget} runs done")
+
+    def _snapshot(self, study: Study, res: CampaignResult, source: str, issued: int, t0: float) -> dict:
+        runs = study.runs
+        entry = {"batch": res.batches, "source": source, "issued": issued,
+                 "runs_done": len(runs.completed()), "failed": len(runs.failed()),
+                 "elapsed": time.monotonic() - t0}
+        parts = [f"{entry['runs_done']}/{self.budget} runs done ({entry['failed']} failed)"]
+        for name, fn in (self.metrics or {}).items():
+            try:
+                value = fn(study)
+                value = None if value is None or not math.isfinite(float(value)) else float(value)
+            except Exception as e:  # a progress figure must not end an expensive campaign
+                self._say(f"warning: {name} not available ({type(e).__name__}: {one_line(e, 120)})")
+                value = None
+            entry[name] = value
+            parts.append(f"{name} " + ("n/a" if value is None else f"{value:.4g}"))
+        self._say(", ".join(parts))
+        return entry
+
+
+def _proposals(study: Study, frame, count: int, aim: str) -> pd.DataFrame:
+    """Proposer output as planned rows: factors rounded to step and clipped to bounds, at most ``count``."""
+    spec = study.spec
+    if not isinstance(frame, pd.DataFrame):
+        raise TypeError(f"the proposer returned {type(frame).__name__}, expected a DataFrame")
+    missing = [f for f in spec.factor_names if f not in frame.columns]
+    if missing:
+        raise ValueError(f"the proposer's frame lacks factor column(s) {', '.join(missing)}")
+    frame = frame.head(count)
+    X = frame[spec.factor_names].to_numpy(dtype=float)
+    if not np.isfinite(X).all():
+        raise ValueError("the proposer returned settings that are not finite numbers")
+    out = pd.DataFrame(spec.round_to_step(X).reshape(-1, spec.d), columns=spec.factor_names)
+    out.insert(0, "run", "")
+    for r in spec.response_names:
+        out[r] = np.nan
+    out["status"] = "planned"
+    out["note"] = (frame["note"].fillna("").astype(str).tolist() if "note" in frame.columns
+                   else f"proposed ({aim})")
+    return out
+
+
+def run_campaign(study_dir, *, command: str | None = None, function=None, budget: int,
+                 initial: int | None = None, batch: int = 1, workers: int | None = None,
+                 scheduler: str | None = None, dask_local: int | None = None,
+                 run_timeout: float | None = None, aim: str = "balanced", propose: Callable | None = None,
+                 metrics: Mapping[str, Callable] | None = None,
+                 progress: Callable[[str], None] | None = None) -> CampaignResult:
+    """Run a closed-loop campaign on ``study_dir`` (the function behind ``windowfinder run``).
+
+    Parameters
+    ----------
+    study_dir : path-like
+        Study folder with study.toml and runs.csv (created when absent).
+    command : str, optional
+        ``"PROGRAM ARGS {in} {out}"``; see :mod:`windowfinder.evaluators` for the file protocol.
+    function : str or callable, optional
+        ``"module:callable"`` or a callable, ``fn(settings: dict) -> dict`` (optionally ``seed=``).
+        Exactly one of ``command`` and ``function``.
+    budget, initial, batch, aim, propose, metrics, progress
+        See :class:`Campaign`.
+    workers, scheduler, dask_local
+        See :func:`make_engine`.
+    run_timeout : float, optional
+        Seconds one command may run (commands only; a Python function cannot be stopped safely).
+
+    Returns
+    -------
+    CampaignResult
+
+    Raises
+    ------
+    InputError
+        Bad arguments, an unreadable study, a function that cannot be imported; runs.csv is unchanged.
+    """
+    if (command is None) == (function is None):
+        raise InputError("give exactly one of --command \"PROGRAM {in} {out}\" and --function "
+                         "module:callable")
+    study = Study.load(study_dir)
+    spec = study.spec
+    if command is not None:
+        evaluator = CommandEvaluator(command, spec.factor_names, spec.response_names, timeout=run_timeout)
+    else:
+        if run_timeout is not None:
+            raise InputError("--run-timeout applies to --command only; a Python function cannot be "
+                             "stopped safely (make it time out itself, or wrap it as a command)")
+        evaluator = FunctionEvaluator(function, spec.response_names)
+    engine = make_engine(evaluator, workers=workers, scheduler=scheduler, dask_local=dask_local)
+    campaign = Campaign(evaluator, budget, initial=initial, batch=batch, aim=aim, propose=propose,
+                        engine=engine, metrics=metrics, progress=progress)
+    return campaign.run(study_dir)
+
+
+__all__ = ["AIMS", "Campaign", "CampaignResult", "CampaignStopped", "RunLedger", "admissible",
+           "default_initial", "make_engine", "run_campaign", "run_seed", "suggest_runs"]

@@ -1,0 +1,500 @@
+"""How one run of a campaign is evaluated: an external command or a Python function.
+
+Both evaluators are picklable callables ``evaluator(run, settings, seed) -> RunOutcome`` so a local
+process pool or a Dask cluster can run them. They never raise for a run that goes wrong: a crash, a
+non-zero exit, a timeout, a missing program or unreadable output becomes a ``failed`` outcome whose
+``note`` says why, and the campaign goes on.
+
+Command protocol
+----------------
+The command line is split with :func:`shlex.split` and run without a shell (a ``;`` or ``$(...)`` in it
+is passed to the program as text, never executed). ``{in}`` and ``{out}`` in any argument are replaced by
+the paths of two CSV files in a fresh temporary folder, which is also the working folder of the program:
+
+* ``{in}`` holds a header and one or more rows: ``run`` and one column per factor (natural units).
+  The campaign currently sends one run per call; a command should handle any number of rows.
+* ``{out}`` must be written by the command: ``run`` and response columns, one row per input run, and
+  optionally ``status`` (``done`` | ``failed``) and ``note`` so the program can report a failed run
+  itself. A response column that is absent or a cell that is blank means "not measured"; a row with
+  every response blank is a failed run. A column that is not a response of the study, a cell that is
+  not a number, or a missing row makes the run failed with a note naming the problem.
+
+An argument that names an existing file relative to the current folder (``python sim.py {in} {out}``)
+is made absolute, because the program runs in its temporary folder.
+
+Engines
+-------
+:func:`make_engine` picks where evaluators run: a local thread pool (a command is a process of its own;
+also any single worker), a local process pool (a Python function on several workers; the callable must
+be importable by name, and a script calling the API needs the ``if __name__ == "__main__":`` guard), or a
+Dask distributed cluster, whose workers must be able to import windowfinder and the function's module.
+"""
+
+from __future__ import annotations
+
+import csv
+import importlib
+import inspect
+import io
+import math
+import numbers
+import os
+import shlex
+import signal
+import subprocess
+import sys
+import tempfile
+import threading
+from collections.abc import Callable, Mapping, Sequence
+from concurrent import futures as cf
+from dataclasses import asdict, dataclass, field
+from pathlib import Path
+
+from .errors import InputError
+
+NOTE_CHARS = 240  # longest note kept in runs.csv
+_EXTRA_OUT = ("run", "status", "note")
+
+
+def one_line(text, limit: int = NOTE_CHARS) -> str:
+    """``text`` on one line (whitespace runs collapsed), cut to ``limit`` characters."""
+    s = " ".join(str(text).split())
+    return s if len(s) <= limit else s[: limit - 3] + "..."
+
+
+@dataclass(frozen=True)
+class RunOutcome:
+    """Result of evaluating one run.
+
+    Attributes
+    ----------
+    run : str
+        Run id.
+    status : {"done", "failed"}
+    responses : dict of str to float
+        Measured responses; a response that is absent was not measured.
+    note : str
+        Why the run failed, or which responses were not measured.
+    """
+
+    run: str
+    status: str
+    responses: dict = field(default_factory=dict)
+    note: str = ""
+
+    @classmethod
+    def failed(cls, run: str, reason: str) -> "RunOutcome":
+        return cls(str(run), "failed", {}, one_line(reason))
+
+    def to_dict(self) -> dict:
+        return asdict(self)
+
+
+def outcome_from_values(run: str, values: Mapping, responses: Sequence[str], origin: str) -> RunOutcome:
+    """Check reported response values and turn them into a :class:`RunOutcome`.
+
+    ``None``, a blank text cell or NaN means "not measured"; all responses unmeasured is a failed run.
+    Any key that is not a response, a value that is not a number, or an infinite value fails the run.
+    """
+    names = list(responses)
+    for key in values:
+        if key not in names:
+            return RunOutcome.failed(run, f"{origin} reported '{key}', which is not a response of the "
+                                          f"study (responses: {', '.join(names)})")
+    measured = {}
+    for name in names:
+        v = values.get(name)
+        if v is None or (isinstance(v, str) and not v.strip()):
+            continue
+        try:
+            f = float(v)
+        except (TypeError, ValueError):
+            return RunOutcome.failed(run, f"{origin}: '{name}' = {v!r} is not a number")
+        if math.isnan(f):
+            continue
+        if not math.isfinite(f):
+            return RunOutcome.failed(run, f"{origin}: '{name}' = {v!r} is not finite")
+        measured[name] = f
+    if not measured:
+        return RunOutcome.failed(run, f"{origin} measured no response (every response blank)")
+    missing = [n for n in names if n not in measured]
+    return RunOutcome(str(run), "done", measured, "not measured: " + ", ".join(missing) if missing else "")
+
+
+# -- Python function -------------------------------------------------------------------------------
+def resolve_callable(target: str) -> Callable:
+    """Import ``"module:callable"`` (``callable`` may be dotted, e.g. ``pkg.sim:Model.run``).
+
+    The module is imported with :func:`importlib.import_module`; nothing is evaluated. When it is not
+    found on the import path, the current folder is tried as well.
+
+    Raises
+    ------
+    InputError
+        If the text is not ``module:callable``, the module cannot be imported or the name is not a
+        callable.
+    """
+    mod_name, sep, attr = str(target).partition(":")
+    if not sep or not mod_name.strip() or not attr.strip():
+        raise InputError(f"--function '{target}': expected module:callable, e.g. mysim:evaluate")
+    try:
+        module = _import(mod_name.strip())
+    except InputError:
+        raise
+    except Exception as e:  # any import-time failure of user code
+        raise InputError(f"--function '{target}': importing '{mod_name}' failed "
+                         f"({type(e).__name__}: {one_line(e, 160)}); fix the module") from None
+    obj = module
+    for part in attr.strip().split("."):
+        try:
+            obj = getattr(obj, part)
+        except AttributeError:
+            raise InputError(f"--function '{target}': module '{mod_name}' has no '{attr}'; check the "
+                             "name after the colon") from None
+    if not callable(obj):
+        raise InputError(f"--function '{target}': '{attr}' is not callable")
+    return obj
+
+
+def _import(name: str):
+    try:
+        return importlib.import_module(name)
+    except ModuleNotFoundError as e:
+        cwd = os.getcwd()
+        if e.name != name.split(".")[0] or cwd in sys.path:
+            raise
+        sys.path.append(cwd)  # a script folder the user runs from, searched after installed packages
+        try:
+            return importlib.import_module(name)
+        except ModuleNotFoundError:
+            raise InputError(f"--function: module '{name}' not found; run from its folder or add the "
+                             "folder to PYTHONPATH") from None
+
+
+def _accepts_seed(fn: Callable) -> bool:
+    try:
+        params = inspect.signature(fn).parameters.values()
+    except (TypeError, ValueError):
+        return False
+    return any(p.name == "seed" or p.kind is p.VAR_KEYWORD for p in params)
+
+
+class FunctionEvaluator:
+    """Evaluate runs by calling ``fn(settings) -> dict`` (``fn(settings, seed=...)`` if it takes a seed).
+
+    Parameters
+    ----------
+    target : str or callable
+        ``"module:callable"`` (imported here to fail early, and again by name in each worker) or the
+        callable itself (pickled by reference, so it must live in an importable module for a process
+        pool; Dask pickles it by value).
+    responses : sequence of str
+        Response names of the study; the callable returns a mapping from (some of) them to numbers.
+
+    Notes
+    -----
+    :class:`~windowfinder.cases.RunFailed` (its ``reason``) or any other exception raised by the
+    callable becomes a failed run with the reason in the note.
+    """
+
+    def __init__(self, target, responses: Sequence[str]):
+        self.target = target
+        self.responses = list(responses)
+        self._fn = resolve_callable(target) if isinstance(target, str) else target
+        if not callable(self._fn):
+            raise InputError(f"function {target!r} is not callable")
+
+    def __getstate__(self):
+        state = dict(self.__dict__)
+        if isinstance(self.target, str):
+            state["_fn"] = None  # re-imported by name in the worker
+        return state
+
+    def __call__(self, run: str, settings: dict, seed: int | None = None) -> RunOutcome:
+        name = self.target if isinstance(self.target, str) else getattr(self.target, "__name__", "function")
+        try:
+            if self._fn is None:
+                self._fn = resolve_callable(self.target)
+            fn = self._fn
+            values = fn(dict(settings), seed=seed) if _accepts_seed(fn) else fn(dict(settings))
+        except Exception as e:
+            reason = getattr(e, "reason", None) or f"{type(e).__name__}: {e}"
+            return RunOutcome.failed(run, f"{name}: {reason}")
+        if not isinstance(values, Mapping):
+            return RunOutcome.failed(run, f"{name} returned {type(values).__name__}, expected a dict of "
+                                          "response values")
+        return outcome_from_values(run, values, self.responses, name)
+
+
+# -- external command ------------------------------------------------------------------------------
+_ACTIVE: set = set()
+_ACTIVE_LOCK = threading.Lock()
+
+
+def stop_commands() -> None:
+    """Kill the process groups of commands still running in this process (on an aborted campaign)."""
+    with _ACTIVE_LOCK:
+        procs = list(_ACTIVE)
+    for proc in procs:
+        _kill(proc)
+
+
+def _kill(proc: subprocess.Popen) -> None:
+    try:
+        if hasattr(os, "killpg"):
+            os.killpg(proc.pid, signal.SIGKILL)  # the command and anything it started
+        else:  # pragma: no cover - Windows
+            proc.kill()
+    except (ProcessLookupError, PermissionError):
+        pass
+
+
+def _absolute(arg: str, program: bool) -> str:
+    """``arg`` made absolute when it names an existing relative path (a bare program name is kept)."""
+    if "{in}" in arg or "{out}" in arg or os.path.isabs(arg) or (program and os.sep not in arg):
+        return arg
+    return str(Path(arg).resolve()) if Path(arg).exists() else arg
+
+
+def _last_line(path: Path) -> str:
+    try:
+        lines = [ln for ln in path.read_text(errors="replace").splitlines() if ln.strip()]
+    except OSError:
+        return ""
+    return one_line(lines[-1], 160) if lines else ""
+
+
+class CommandEvaluator:
+    """Evaluate runs with an external program (see the module docstring for the file protocol).
+
+    Parameters
+    ----------
+    command : str
+        Command line holding ``{in}`` and ``{out}``, split with :func:`shlex.split`, run without a shell.
+    factors, responses : sequence of str
+        Factor and response names of the study, in study order.
+    timeout : float or None
+        Seconds a run may take; the command (its whole process group) is then stopped and the run
+        recorded as failed.
+    """
+
+    def __init__(self, command: str, factors: Sequence[str], responses: Sequence[str],
+                 timeout: float | None = None):
+        try:
+            argv = shlex.split(str(command))
+        except ValueError as e:
+            raise InputError(f"--command: cannot split '{command}' ({e}); check the quotes") from None
+        if not argv:
+            raise InputError("--command is empty; give a program and its arguments with {in} and {out}")
+        text = " ".join(argv)
+        for key in ("{in}", "{out}"):
+            if key not in text:
+                raise InputError(f"--command '{command}': {key} is missing; the program reads the settings "
+                                 "from {in} and writes the responses to {out}")
+        if timeout is not None and not timeout > 0:
+            raise InputError(f"--run-timeout {timeout}: must be a positive number of seconds")
+        self.argv = [_absolute(a, program=(i == 0)) for i, a in enumerate(argv)]
+        self.factors = list(factors)
+        self.responses = list(responses)
+        self.timeout = timeout
+
+    def __call__(self, run: str, settings: dict, seed: int | None = None) -> RunOutcome:
+        with tempfile.TemporaryDirectory(prefix="windowfinder-run-") as tmp:
+            folder = Path(tmp)
+            inp, out = folder / "in.csv", folder / "out.csv"
+            buf = io.StringIO()
+            w = csv.writer(buf, lineterminator="\n")
+            w.writerow(["run", *self.factors])
+            w.writerow([run, *(repr(float(settings[f])) for f in self.factors)])
+            inp.write_text(buf.getvalue(), encoding="utf-8")
+            argv = [a.replace("{in}", str(inp)).replace("{out}", str(out)) for a in self.argv]
+            failure = self._execute(argv, folder)
+            if failure:
+                return RunOutcome.failed(run, failure)
+            return self.read_output(out, run)
+
+    def _execute(self, argv: list[str], folder: Path) -> str:
+        """Run the program; return '' on exit code 0, else the reason it failed."""
+        err_path = folder / "stderr.txt"
+        program = self.argv[0]
+        with open(folder / "stdout.txt", "wb") as so, open(err_path, "wb") as se:
+            try:
+                proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=so, stderr=se, cwd=folder,
+                                        start_new_session=True)
+            except FileNotFoundError:
+                return f"command: program '{program}' not found; check the path or install it"
+            except PermissionError:
+                return f"command: program '{program}' is not executable (permission denied)"
+            except OSError as e:
+                return f"command: cannot start '{program}' ({e})"
+            with _ACTIVE_LOCK:
+                _ACTIVE.add(proc)
+            try:
+                code = proc.wait(timeout=self.timeout)
+            except subprocess.TimeoutExpired:
+                _kill(proc)
+                proc.wait()
+                return f"command timed out after {self.timeout:g} s and was stopped"
+            finally:
+                with _ACTIVE_LOCK:
+                    _ACTIVE.discard(proc)
+        if code != 0:
+            last = _last_line(err_path)
+            how = f"was killed by signal {-code}" if code < 0 else f"exited with code {code}"
+            return f"command {how}" + (f": {last}" if last else " (no message on stderr)")
+        return ""
+
+    def read_output(self, path: Path, run: str) -> RunOutcome:
+        """Parse the ``{out}`` file of one run."""
+        if not path.exists():
+            return RunOutcome.failed(run, "command exited 0 but wrote no output file {out}")
+        try:
+            text = path.read_bytes().decode("utf-8-sig")
+            rows = [r for r in csv.reader(io.StringIO(text)) if any(c.strip() for c in r)]
+        except (UnicodeDecodeError, csv.Error) as e:
+            return RunOutcome.failed(run, f"command output is not a readable CSV ({type(e).__name__})")
+        if not rows:
+            return RunOutcome.failed(run, "command output is empty; expected a header and one row per run")
+        header = [c.strip() for c in rows[0]]
+        bad = [c for c in header if c not in self.responses and c not in _EXTRA_OUT]
+        if "run" not in header or bad or len(set(header)) != len(header):
+            what = (f"column '{bad[0]}' is not a response" if bad else
+                    "no 'run' column" if "run" not in header else "a column appears twice")
+            return RunOutcome.failed(run, f"command output is malformed: {what}; expected run and "
+                                          f"response columns ({', '.join(self.responses)})")
+        mine = [r for r in rows[1:] if len(r) > header.index("run") and r[header.index("run")].strip() == run]
+        if len(mine) != 1:
+            return RunOutcome.failed(run, f"command output is malformed: {len(mine)} rows for run {run} "
+                                          "(expected one)")
+        cells = mine[0]
+        if len(cells) != len(header):
+            return RunOutcome.failed(run, f"command output is malformed: {len(cells)} cells in the row of "
+                                          f"run {run} but {len(header)} columns")
+        rec = dict(zip(header, (c.strip() for c in cells)))
+        status = rec.pop("status", "").lower() or "done"
+        note = rec.pop("note", "")
+        rec.pop("run")
+        if status == "failed":
+            return RunOutcome.failed(run, f"command reported failed: {note}" if note else
+                                     "command reported failed")
+        if status != "done":
+            return RunOutcome.failed(run, f"command output is malformed: status '{status}' (use done or "
+                                          "failed)")
+        outcome = outcome_from_values(run, rec, self.responses, "command")
+        if note and outcome.status == "done":
+            return RunOutcome(outcome.run, "done", outcome.responses,
+                              one_line("; ".join(filter(None, [note, outcome.note]))))
+        return outcome
+
+
+# -- engines: where runs are evaluated -------------------------------------------------------------
+def _process_context():
+    """Start method for pool workers: a fork server (one clean process, started once, with windowfinder
+    imported, that forks each worker) where the platform has one, else spawn. Plain fork is avoided: it
+    copies a process that may hold threads (Dask, the pool's own manager) and can deadlock."""
+    import multiprocessing
+
+    if "forkserver" in multiprocessing.get_all_start_methods():
+        ctx = multiprocessing.get_context("forkserver")
+        ctx.set_forkserver_preload(["windowfinder.evaluators"])
+        return ctx
+    return multiprocessing.get_context("spawn")
+
+
+class _LocalEngine:
+    """A concurrent.futures pool: threads (commands, or one worker) or spawned processes (functions)."""
+
+    def __init__(self, workers: int, processes: bool):
+        self.workers, self.processes = workers, processes
+        self.pool = None
+
+    def __enter__(self):
+        if self.processes:
+            self.pool = cf.ProcessPoolExecutor(self.workers, mp_context=_process_context())
+        else:
+            self.pool = cf.ThreadPoolExecutor(self.workers, thread_name_prefix="windowfinder-run")
+        return self
+
+    def submit(self, fn, *args):
+        return self.pool.submit(fn, *args)
+
+    def as_completed(self, fs):
+        return cf.as_completed(fs)
+
+    def __exit__(self, exc_type, exc, tb):
+        if exc_type is None:
+            self.pool.shutdown(wait=True)
+            return
+        stop_commands()
+        for proc in list((getattr(self.pool, "_processes", None) or {}).values()):
+            proc.terminate()  # our own pool workers, still busy with runs nobody will record
+        self.pool.shutdown(wait=False, cancel_futures=True)
+
+
+class _DaskEngine:
+    """A Dask distributed client on an existing scheduler or on a LocalCluster started here."""
+
+    def __init__(self, scheduler: str | None = None, local_workers: int | None = None):
+        self.scheduler, self.local_workers = scheduler, local_workers
+        self.client = self.cluster = None
+
+    def __enter__(self):
+        try:
+            from dask.distributed import Client, LocalCluster
+        except ImportError:
+            raise InputError("running on Dask needs dask.distributed; pip install 'windowfinder[cluster]' "
+                             "or use --workers for a local pool") from None
+        if self.local_workers:
+            self.cluster = LocalCluster(n_workers=self.local_workers, threads_per_worker=1, processes=True,
+                                        dashboard_address=None)
+            self.client = Client(self.cluster)
+        else:
+            try:
+                self.client = Client(self.scheduler, timeout="20s")
+            except (OSError, TimeoutError, ValueError) as e:
+                raise InputError(f"--scheduler {self.scheduler}: cannot connect ({one_line(e, 120)}); "
+                                 "check the address (tcp://host:8786) and that the scheduler runs") from None
+        return self
+
+    def submit(self, fn, *args):
+        return self.client.submit(fn, *args, pure=False)
+
+    def as_completed(self, fs):
+        from dask.distributed import as_completed
+
+        return as_completed(list(fs))
+
+    def __exit__(self, exc_type, exc, tb):
+        try:
+            self.client.close()
+        finally:
+            if self.cluster is not None:
+                self.cluster.close()
+
+
+def check_count(name: str, value, low: int) -> None:
+    """Refuse ``value`` unless it is a whole number >= ``low`` (``name`` is the option shown to the user)."""
+    if isinstance(value, bool) or not isinstance(value, numbers.Integral) or value < low:
+        raise InputError(f"{name} {value!r}: must be a whole number >= {low}")
+
+
+def make_engine(evaluator, workers: int | None = None, scheduler: str | None = None,
+                dask_local: int | None = None):
+    """The evaluation engine: a Dask client (``scheduler`` address or ``dask_local`` workers on this
+    machine) or a local pool of ``workers`` (default ``os.cpu_count()``): threads for a command or a
+    single worker, spawned processes for a Python function."""
+    if scheduler and dask_local:
+        raise InputError("--scheduler and --dask-local exclude each other; choose one")
+    if dask_local is not None:
+        check_count("--dask-local", dask_local, 1)
+        return _DaskEngine(local_workers=dask_local)
+    if scheduler:
+        return _DaskEngine(scheduler=scheduler)
+    workers = workers if workers is not None else (os.cpu_count() or 1)
+    check_count("--workers", workers, 1)
+    processes = isinstance(evaluator, FunctionEvaluator) and workers > 1
+    return _LocalEngine(workers, processes)
+
+
+__all__ = ["CommandEvaluator", "FunctionEvaluator", "RunOutcome", "one_line", "outcome_from_values",
+           "check_count", "make_engine", "resolve_callable", "stop_commands"]
