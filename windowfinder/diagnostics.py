@@ -113,14 +113,14 @@ def _length_scale_checks(model, response, factor_names, factor_spans):
     low, high = LENGTH_SCALE_BOUNDS
     for f, c in zip(factor_names, coded):
         if c <= low * BOUND_SLACK:
-            notes.append(f"{response} changes faster along {f} than the runs can resolve (length scale at "
+            notes.append(f"response changes faster along {f} than the runs can resolve (length scale at "
                          f"its lower bound); add runs along {f} or narrow its range")
         elif c >= high / BOUND_SLACK:
-            notes.append(f"factor {f} looks inactive for {response} (length scale at its upper bound)")
+            notes.append(f"factor {f} looks inactive (length scale at its upper bound)")
     noise_var = (model.noise_std_ / model.y_scale_) ** 2
     if noise_var <= NOISE_BOUNDS[0] * BOUND_SLACK ** 2:
-        notes.append(f"the {response} model passes through every run (noise estimated near zero); "
-                     "replicate runs would show the real scatter")
+        notes.append("model passes through every run (noise estimated near zero); replicate runs would "
+                     "show the real scatter")
     return scales, notes
 
 
@@ -163,8 +163,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     ok = np.isfinite(median) & np.isfinite(sd)
     notes = [model.warning_] if getattr(model, "warning_", "") else []
     if not ok.all():
-        notes.append(f"{int((~ok).sum())} run(s) of {response_name} cannot be predicted from the others "
-                     "(each alone fixes a model term); they are left out of these checks")
+        notes.append(f"{int((~ok).sum())} run(s) cannot be predicted from the others (each alone fixes a "
+                     "model term); they are left out of these checks")
     resid = y[ok] - median[ok]
     press = float(resid @ resid)
     ss_tot = float(np.sum((y[ok] - y[ok].mean()) ** 2))
@@ -174,11 +174,11 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     coverage = float(inside.mean()) if ok.any() else float("nan")
 
     if q2 < Q2_MIN:
-        notes.append(f"the {response_name} model explains little of the variation (leave-one-out "
-                     f"Q^2 = {q2:.2f}); do not trust its window")
+        notes.append(f"model explains little of the variation (leave-one-out Q^2 = {q2:.2f}); do not trust "
+                     "its window")
     if n >= COVERAGE_MIN_RUNS and coverage < COVERAGE_MIN:
-        notes.append(f"the {response_name} intervals are too narrow: only {int(inside.sum())} of "
-                     f"{inside.size} runs fall inside their 95% leave-one-out interval")
+        notes.append(f"intervals are too narrow: only {int(inside.sum())} of {inside.size} runs fall inside "
+                     "their 95% leave-one-out interval")
     scales, ls_notes = _length_scale_checks(model, response_name, list(factor_names), list(factor_spans))
     notes += ls_notes
     z_bar = float(np.mean(model.z_train_))

@@ -55,13 +55,10 @@ class Transform:
         self.kind = kind
         self.bounds = None if bounds is None else tuple(
             float(v) if v is not None else (-np.inf, np.inf)[i] for i, v in enumerate(bounds))
-        if kind == "logit":
-            if (self.bounds is None or len(self.bounds) != 2 or not np.all(np.isfinite(self.bounds))
-                    or not self.bounds[0] < self.bounds[1]):
-                raise InputError(
-                    f"transform logit needs bounds = [low, high] with low < high, got {bounds}; "
-                    "give the physical bounds of the response (e.g. [0, 100] for a percentage)"
-                )
+        if kind == "logit" and (self.bounds is None or len(self.bounds) != 2
+                                or not np.all(np.isfinite(self.bounds)) or not self.bounds[0] < self.bounds[1]):
+            raise InputError(f"transform logit needs bounds = [low, high] with low < high, got {bounds}; give "
+                             "the physical bounds of the response (e.g. [0, 100] for a percentage)")
         # domain (lower, upper) of the transform; "none" has no domain limits even with bounds given
         self.lower = -np.inf if kind == "none" else (
             self.bounds[0] if self.bounds and np.isfinite(self.bounds[0]) else 0.0)
@@ -70,22 +67,22 @@ class Transform:
     def __repr__(self):
         return f"Transform(kind={self.kind!r}, bounds={self.bounds!r})"
 
+    def _g(self, y):
+        if self.kind == "none":
+            return y.copy()
+        with np.errstate(divide="ignore"):  # a bound itself maps to -inf / +inf
+            z = np.log(y - self.lower)
+            return z if self.kind == "log" else z - np.log(self.upper - y)
+
     def forward(self, y):
         """Natural units to latent scale; values outside the open domain raise InputError."""
         y = np.asarray(y, dtype=float)
-        if self.kind == "none":
-            return y.copy()
-        bad = ~((y > self.lower) & (y < self.upper))
-        if np.any(bad[np.isfinite(y)]):
-            v = y[bad & np.isfinite(y)].flat[0]
+        bad = np.isfinite(y) & ~((y > self.lower) & (y < self.upper))
+        if np.any(bad):
             dom = f"({self.lower:g}, {self.upper:g})" if self.kind == "logit" else f"> {self.lower:g}"
-            raise InputError(
-                f"transform {self.kind}: value {v:g} is outside its domain {dom}; "
-                "check the value, widen the bounds or use transform = \"none\""
-            )
-        if self.kind == "log":
-            return np.log(y - self.lower)
-        return np.log(y - self.lower) - np.log(self.upper - y)
+            raise InputError(f"transform {self.kind}: value {y[bad].flat[0]:g} is outside its domain {dom}; "
+                             "check the value, widen the bounds or use transform = \"none\"")
+        return self._g(y)
 
     def inverse(self, z):
         """Latent scale to natural units (``+-inf`` map to the bounds)."""
@@ -110,22 +107,12 @@ class Transform:
         """Transform a limit; ``None`` passes through, limits at or beyond a bound map to ``+-inf``."""
         if v is None:
             return None
-        v_arr = np.asarray(v, dtype=float)
-        out = np.full(v_arr.shape, np.nan)
-        low, high = v_arr <= self.lower, v_arr >= self.upper
-        inside = ~(low | high)
-        out[low], out[high] = -np.inf, np.inf
-        if self.kind == "none":
-            out[inside] = v_arr[inside]
-        else:
-            out[inside] = self.forward(v_arr[inside])
-        return float(out) if out.ndim == 0 else out
+        z = self._g(np.clip(np.asarray(v, dtype=float), self.lower, self.upper))
+        return float(z) if z.ndim == 0 else z
 
 
 def _as_transform(transform, bounds):
-    if isinstance(transform, Transform):
-        return transform
-    return Transform(transform, bounds)
+    return transform if isinstance(transform, Transform) else Transform(transform, bounds)
 
 
 def _check_xy(X, y=None, d=None):
@@ -147,13 +134,34 @@ def _check_xy(X, y=None, d=None):
 
 
 class _ResponseModel:
-    """Shared interval logic of the per-response models."""
+    """Shared prediction, interval and conditioning logic of the per-response models."""
 
     kind = ""
+    _CHUNK = 20000  # rows per block in predict, to bound memory on large grids
 
     def interval_quantile(self, level, loo=False):
         """Two-sided quantile multiplier for a central interval of probability ``level``."""
         raise NotImplementedError
+
+    def predict(self, X, return_std=True, noise=False):
+        """Latent mean and, with ``return_std``, latent sd (model; plus noise sd when ``noise=True``)."""
+        X = _check_xy(X, d=self.X_train_.shape[1])
+        parts = [self._moments(X[i:i + self._CHUNK], return_std, noise)
+                 for i in range(0, max(X.shape[0], 1), self._CHUNK)]
+        mean = np.concatenate([m for m, _ in parts])
+        return (mean, np.concatenate([v for _, v in parts])) if return_std else mean
+
+    def condition(self, X_new, y_new_latent):
+        """New model on the data augmented by ``X_new`` with latent values ``y_new_latent``.
+
+        Hyperparameters (and the GP's standardisation) are kept: no re-optimisation. For batch
+        fantasies such as the kriging believer.
+        """
+        X_new = _check_xy(X_new, d=self.X_train_.shape[1])
+        z_new = np.broadcast_to(np.asarray(y_new_latent, float).ravel(), (X_new.shape[0],))
+        new = copy.copy(self)
+        new._fit_fixed(np.vstack([self.X_train_, X_new]), np.concatenate([self.z_train_, z_new]))
+        return new
 
     def predict_interval(self, X, level=0.95, noise=True):
         """Median and central ``level`` interval in natural units.
@@ -242,10 +250,14 @@ class GPModel(_ResponseModel):
             # hyperparameters at a bound are reported by windowfinder.diagnostics in plain words
             warnings.simplefilter("ignore", ConvergenceWarning)
             gp.fit(X, (z - self.y_mean_) / self.y_scale_)
-        self._set_fitted(gp, X, z)
+        self._store(gp, X, z)
         return self
 
-    def _set_fitted(self, gp, X, z):
+    def _fit_fixed(self, X, z):
+        gp = GaussianProcessRegressor(kernel=self.gp_.kernel_, alpha=JITTER, normalize_y=False, optimizer=None)
+        self._store(gp.fit(X, (z - self.y_mean_) / self.y_scale_), X, z)
+
+    def _store(self, gp, X, z):
         self.gp_ = gp
         self.X_train_, self.z_train_ = X, z
         k = gp.kernel_
@@ -254,17 +266,13 @@ class GPModel(_ResponseModel):
         self.noise_std_ = self.y_scale_ * float(np.sqrt(k.k2.noise_level))
         self.length_scales_ = np.broadcast_to(np.asarray(k.k1.k2.length_scale, float), (X.shape[1],)).copy()
 
-    def predict(self, X, return_std=True, noise=False):
-        """Latent mean and sd (of the latent function, plus noise when ``noise=True``).
-
-        Standard GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26), computed with the fitted
-        signal kernel so the sd excludes the white-noise term unless asked for.
-        """
-        X = _check_xy(X, d=self.X_train_.shape[1])
+    def _moments(self, X, return_std, noise):
+        # GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26) with the fitted signal kernel, so the
+        # sd excludes the white-noise term unless asked for
         Ks = self._signal(X, self.X_train_)
         mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
         if not return_std:
-            return mean
+            return mean, None
         V = solve_triangular(self.gp_.L_, Ks.T, lower=True, check_finite=False)
         var = self._signal.diag(X) - np.einsum("ij,ij->j", V, V)
         var = np.maximum(var, 0.0) * self.y_scale_ ** 2
@@ -273,6 +281,7 @@ class GPModel(_ResponseModel):
         return mean, np.sqrt(var)
 
     def interval_quantile(self, level, loo=False):
+        """Standard normal quantile (the GP predictive distribution is Gaussian)."""
         return float(stats.norm.ppf(0.5 + level / 2.0))
 
     def loo(self):
@@ -293,21 +302,6 @@ class GPModel(_ResponseModel):
         ys = (self.z_train_ - self.y_mean_) / self.y_scale_
         mu = ys - self.gp_.alpha_ / d
         return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ / np.sqrt(d)
-
-    def condition(self, X_new, y_new_latent):
-        """New model with the same hyperparameters and standardisation, data augmented.
-
-        For batch fantasies (kriging believer): no re-optimisation.
-        """
-        X_new = _check_xy(X_new, d=self.X_train_.shape[1])
-        y_new = np.broadcast_to(np.asarray(y_new_latent, float).ravel(), (X_new.shape[0],))
-        X = np.vstack([self.X_train_, X_new])
-        z = np.concatenate([self.z_train_, y_new])
-        gp = GaussianProcessRegressor(kernel=self.gp_.kernel_, alpha=JITTER, normalize_y=False, optimizer=None)
-        gp.fit(X, (z - self.y_mean_) / self.y_scale_)
-        new = copy.copy(self)
-        new._set_fitted(gp, X, z)
-        return new
 
 
 def feature_names(d, degree=2, names=None):
@@ -399,12 +393,13 @@ class QuadraticModel(_ResponseModel):
                 f"the runs cannot separate all {p} terms of the polynomial model (rank {rank}); each factor "
                 "needs at least 3 levels for its square term; add centre or axial runs or use the "
                 "Gaussian-process model")
-        self.X_train_, self.z_train_ = X, z
-        self._solve(F, z)
         self.warning_ = ""
+        self._fit_fixed(X, z)
         return self
 
-    def _solve(self, F, z):
+    def _fit_fixed(self, X, z):
+        self.X_train_, self.z_train_ = X, z
+        F = self._features(X)
         Q, R = np.linalg.qr(F)
         self.coef_ = solve_triangular(R, Q.T @ z)
         Rinv = solve_triangular(R, np.eye(R.shape[0]))
@@ -415,17 +410,13 @@ class QuadraticModel(_ResponseModel):
         self.s2_ = float(self.resid_ @ self.resid_) / self.df_resid_
         self.noise_std_ = float(np.sqrt(self.s2_))
 
-    def predict(self, X, return_std=True, noise=False):
-        """Latent mean and sd: ``s^2 x0'(X'X)^-1 x0`` (model), plus ``s^2`` with ``noise=True``.
-
-        Montgomery (2013), §10.5 (confidence interval on the mean response) and §10.6 (prediction of new
-        observations).
-        """
-        X = _check_xy(X, d=self.X_train_.shape[1])
+    def _moments(self, X, return_std, noise):
+        # variance s^2 x0'(X'X)^-1 x0 of the fitted mean, plus s^2 for a new observation
+        # (Montgomery 2013, §10.5 and §10.6)
         F = self._features(X)
         mean = F @ self.coef_
         if not return_std:
-            return mean
+            return mean, None
         var = self.s2_ * np.einsum("ij,jk,ik->i", F, self.xtx_inv_, F)
         if noise:
             var = var + self.s2_
@@ -459,16 +450,6 @@ class QuadraticModel(_ResponseModel):
                 s2_i = np.full_like(e, self.s2_)
             sd = np.where(ok, np.sqrt(np.maximum(s2_i, 0.0) / one_h), np.nan)
         return self.z_train_ - press, sd
-
-    def condition(self, X_new, y_new_latent):
-        """New model refitted on the augmented data (least squares has no hyperparameters)."""
-        X_new = _check_xy(X_new, d=self.X_train_.shape[1])
-        y_new = np.broadcast_to(np.asarray(y_new_latent, float).ravel(), (X_new.shape[0],))
-        new = copy.copy(self)
-        new.X_train_ = np.vstack([self.X_train_, X_new])
-        new.z_train_ = np.concatenate([self.z_train_, y_new])
-        new._solve(new._features(new.X_train_), new.z_train_)
-        return new
 
 
 class FailureModel:
@@ -569,6 +550,8 @@ class Surrogates:
         X = _check_xy(X)
         n = X.shape[0]
         ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
+        if ok.shape[0] != n:
+            raise InputError(f"{n} runs of factor settings but {ok.shape[0]} run outcomes (works)")
         transforms = transforms or {}
         models = {}
         for name, y in Y.items():
