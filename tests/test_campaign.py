@@ -10,6 +10,7 @@ leaves the file byte-identical), checked by counting rows and comparing bytes.
 from __future__ import annotations
 
 import math
+import os
 import subprocess
 import sys
 import textwrap
@@ -166,7 +167,7 @@ def test_resume_after_hard_crash_reaches_budget_without_duplicates(branin_dir):
         run_campaign({str(branin_dir)!r}, function="campaign_helpers:crash_at", budget=8, initial=4,
                      batch=3, workers=1, propose=h.random_proposer, progress=lambda s: None)
     """)
-    env = {**__import__("os").environ, "PYTHONPATH": str(TESTS), "CRASH_AT": "6"}
+    env = {**os.environ, "PYTHONPATH": str(TESTS), "CRASH_AT": "6"}
     proc = subprocess.run([sys.executable, "-c", code], env=env, capture_output=True, text=True,
                           timeout=120)
     assert proc.returncode == 3, proc.stderr
@@ -190,6 +191,7 @@ def test_resume_after_hard_crash_reaches_budget_without_duplicates(branin_dir):
 
 
 def test_interrupt_mid_batch_on_pool_then_resume(branin_dir):
+    # expectation: the budget rule and unique ids (counted); completed rows kept verbatim
     calls = []
 
     def interrupt_at_fifth_result(line):
@@ -214,6 +216,7 @@ def test_interrupt_mid_batch_on_pool_then_resume(branin_dir):
 
 
 def test_dask_local_cluster_completes_campaign(branin_dir):
+    # expectation: the budget rule, counted, and values recomputed from the recorded settings
     pytest.importorskip("dask.distributed")
     # evaluate_on_dask fails any run that is not executed inside a Dask worker
     res = run_campaign(branin_dir, function="campaign_helpers:evaluate_on_dask", budget=6, initial=4,
@@ -235,6 +238,8 @@ def test_dask_local_cluster_completes_campaign(branin_dir):
     ("selffail", "command reported failed: nozzle clogged"),
 ])
 def test_failing_command_records_failed_runs_and_goes_on(branin_dir, sim, mode, expected):
+    # expectation: the {in}/{out} protocol of windowfinder.evaluators and DESIGN.md's "failed" status;
+    # every run fails with the named reason and the loop still reaches the budget (counted)
     res = run_campaign(branin_dir, command=f"{sys.executable} {sim} {{in}} {{out}} {mode}", budget=4,
                        initial=2, batch=2, workers=2, propose=helpers.random_proposer, progress=quiet)
     frame = table(branin_dir)
@@ -245,6 +250,7 @@ def test_failing_command_records_failed_runs_and_goes_on(branin_dir, sim, mode, 
 
 
 def test_missing_program_and_timeout_are_failed_runs(branin_dir, sim, tmp_path):
+    # expectation: as above; the hanging script sleeps 60 s, far past the 1 s limit
     run_campaign(branin_dir, command="windowfinder-no-such-program {in} {out}", budget=2, initial=2,
                  workers=2, progress=quiet)
     frame = table(branin_dir)
@@ -258,6 +264,8 @@ def test_missing_program_and_timeout_are_failed_runs(branin_dir, sim, tmp_path):
 
 
 def test_command_results_and_unmeasured_responses(branin_dir, sim):
+    # expectation: values recomputed from the recorded settings; DESIGN.md: a blank response cell on a
+    # done run means "not measured"
     run_campaign(branin_dir, command=f"{sys.executable} {sim} {{in}} {{out}} ok", budget=3, initial=3,
                  workers=2, progress=quiet)
     run_campaign(branin_dir, command=f"{sys.executable} {sim} {{in}} {{out}} partial", budget=5,
@@ -273,6 +281,8 @@ def test_command_results_and_unmeasured_responses(branin_dir, sim):
 
 
 def test_command_is_not_run_through_a_shell(branin_dir, sim, tmp_path):
+    # expectation: POSIX shell grammar (IEEE Std 1003.1, "Shell Command Language"): through a shell,
+    # ';', '&&' and '$( )' would run touch; split with shlex and run without one, they are plain words
     pwned = tmp_path / "PWNED"
     also = tmp_path / "ALSO"
     run_campaign(branin_dir, command=f"{sys.executable} {sim} {{in}} {{out}} ok ; touch {pwned} "
@@ -299,6 +309,7 @@ def test_function_failures_and_seed():
 
 
 def test_bad_arguments_leave_runs_csv_byte_identical(study_dir):
+    # expectation: DESIGN.md "a command that fails leaves runs.csv byte-identical" (sha256 of every file)
     before = snapshot(study_dir)
     bad = [dict(function="campaign_helpers:evaluate", budget=0),
            dict(function="campaign_helpers:evaluate", command="x {in} {out}", budget=5),
@@ -315,6 +326,8 @@ def test_bad_arguments_leave_runs_csv_byte_identical(study_dir):
 
 
 def test_planned_rows_issued_first_and_budget_never_exceeded(study_dir):
+    # expectation: the budget rule (completed runs never exceed it) and planned rows first, counted;
+    # P1's yield is the helper's closed form 60 + 0.3 * temperature
     # conftest's runs.csv: 5 completed runs; add 3 planned rows
     with open(study_dir / "runs.csv", "a") as fh:
         fh.write("P1,55,60,,,planned,\nP2,65,90,,,planned,\nP3,75,120,,,planned,\n")
@@ -331,6 +344,7 @@ def test_planned_rows_issued_first_and_budget_never_exceeded(study_dir):
 
 
 def test_ledger_keeps_other_editors_rows_and_results(study_dir):
+    # expectation: DESIGN.md run-table contract; another editor's rows and values survive verbatim
     study = Study.load(study_dir)
     ledger = RunLedger(study)
     rows = ledger.add(pd.DataFrame({"run": ["", ""], "temperature": [50.0, 60.0], "time": [40.0, 50.0],

@@ -274,6 +274,7 @@ class Campaign:
     def run(self, study_dir) -> CampaignResult:
         """Run the campaign on ``study_dir`` until runs.csv holds ``budget`` completed runs."""
         t0 = time.monotonic()
+        self._warned: set[str] = set()
         check_count("--budget", self.budget, 1)
         check_count("--batch", self.batch, 1)
         if self.aim not in AIMS:
@@ -360,7 +361,9 @@ class Campaign:
                 value = fn(study)
                 value = None if value is None or not math.isfinite(float(value)) else float(value)
             except Exception as e:  # a progress figure must not end an expensive campaign
-                self._say(f"warning: {name} not available ({type(e).__name__}: {one_line(e, 120)})")
+                if name not in self._warned:
+                    self._warned.add(name)
+                    self._say(f"warning: {name} not available ({type(e).__name__}: {one_line(e, 120)})")
                 value = None
             entry[name] = value
             parts.append(f"{name} " + ("n/a" if value is None else f"{value:.4g}"))
