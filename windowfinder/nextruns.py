@@ -1,0 +1,418 @@
+"""Next runs: the batch that most sharpens the process window or most improves the trade-off.
+
+Every run is expensive, so each proposed setting is chosen by a criterion, on coded settings in
+``[0, 1]^d``:
+
+**Window** (sharpen the window's edge). A setting belongs to the window when a new run there meets
+every limit with probability at least the confidence ``c``. With the true process means ``f_k(x)`` known
+this is ``P_works(x) * prod_k P(lo_k <= f_k(x) + noise <= hi_k) >= c``. The models only know ``f_k`` up
+to their posterior ``N(mu_k, s_k^2)`` (model spread, without run-to-run noise), so the probability that
+``x`` truly belongs to the window is ``pi(x) = P_f(... >= c)``, estimated from ``S`` = 128 posterior
+draws with common random numbers. The score is the misclassification probability ``min(pi, 1 - pi)``:
+the ambiguity of the level-set estimation of Gotovos, Casati, Hitz & Krause (2013, "Active learning for
+level set estimation", IJCAI) and the straddle idea of Bryan, Schneider, Nichol, Miller, Genovese &
+Wasserman (2005, "Active learning for identifying function threshold boundaries", NIPS 18). Chosen over
+an expected reduction of the uncertain volume by fantasies as cheap enough for thousands of candidates
+per pick, and over ``min(p, 1 - p)`` of the usual joint probability ``p`` (run-to-run noise included)
+because that stays high along the edge however many runs sit there: a run reduces only the model's
+own doubt, and ``pi`` falls to 0 or 1 as that shrinks.
+
+**Trade-off** (improve the constrained front). Expected hypervolume improvement (Emmerich,
+Giannakoglou & Naujoks 2006, "Single- and multiobjective evolutionary optimization assisted by
+Gaussian random field metamodels", IEEE Trans. Evol. Comput. 10(4)) in its Monte Carlo form (Daulton,
+Balandat & Bakshy 2020, qEHVI, NeurIPS), times the joint probability of meeting every limit (the usual
+weighting of an improvement by the probability of feasibility; Schonlau, Welch & Jones 1998,
+"Global versus local search in constrained optimization of computer models", IMS Lecture Notes 34).
+Draws of each goal's process mean are mapped to natural units and to minimisation form (maximize:
+``-Y``; minimize: ``Y``; target: ``|Y - target|``). The current front is the predicted medians at the
+completed runs whose joint probability reaches the confidence (predicted, not observed, values:
+responses may be unmeasured at some runs and predictions carry no run-to-run noise); the reference
+point is the nadir of the predicted values at all completed runs plus 10 % of their range.
+
+**Batches** (kriging believer; Ginsbourger, Le Riche & Carraro 2010, "Kriging is well-suited to
+parallelize optimization", in *Computational Intelligence in Expensive Optimization Problems*,
+Springer): after each pick every response model is conditioned on its own predicted mean there (same
+hyperparameters) and the candidates are scored again; a feasible pick joins the front. The failure
+model is left unconditioned; settings where the process is predicted to fail (``P(works) < 0.5``) are
+not proposed while any other candidate is.
+
+**Candidates**: a scrambled Sobol set, Gaussian perturbations around the best few, a short
+Nelder-Mead polish of the best (scipy), each snapped to the factor steps. A setting closer than
+``min_distance`` to a completed run or an earlier pick is refused; the default ``0.05 * sqrt(d)`` is
+the finest length scale the models may fit (0.05 coded units per factor, see
+:mod:`windowfinder.surrogate`) taken in every factor at once: closer settings are practically the
+same run for the model (common practice, no source). A completed run may be repeated (``replicate``)
+only when its score beats the best new setting by a factor of 2 (common practice, no source).
+
+**Stopping advice**: the uncertain share is the fraction of the space (Sobol candidates) whose window
+class is still undecided at the confidence (``1 - c < pi < c``); the relative gain is the best
+probability-weighted expected hypervolume improvement divided by the hypervolume of the current front.
+Another batch is advised while the uncertain share exceeds 5 % or the relative gain 1 % (common
+practice, no source).
+"""
+
+from __future__ import annotations
+
+import copy
+from dataclasses import dataclass, field
+
+import numpy as np
+import pandas as pd
+from scipy.optimize import minimize
+from scipy.spatial.distance import cdist
+
+from .designs import sobol
+from .errors import InputError
+from .feasibility import Feasibility, limit_probability
+from .hypervolume import expected_improvement, hypervolume
+from .surrogate import Surrogates
+
+AIMS = ("balanced", "window", "tradeoff")
+SENSES = ("maximize", "minimize", "target")
+N_SAMPLES = 128              # posterior draws per criterion (common random numbers)
+N_SAMPLES_MANY_GOALS = 32    # three or more goals: pymoo hypervolume per draw
+MAX_CANDIDATES_MANY_GOALS = 256
+N_CENTRES, N_LOCAL, LOCAL_STEP = 4, 32, 0.05   # local perturbations around the best candidates
+MIN_WORKS = 0.5
+REPLICATE_MARGIN = 2.0
+PAY_UNCERTAIN, PAY_GAIN = 0.05, 0.01
+
+
+@dataclass
+class Suggestions:
+    """Proposed next runs.
+
+    Attributes
+    ----------
+    X : ndarray (q, d)
+        Coded settings.
+    aim : list of str
+        ``"window"`` or ``"tradeoff"`` per run: the criterion that chose it.
+    gain : ndarray (q,)
+        Score of each pick when chosen: misclassification probability (window) or probability-weighted
+        expected hypervolume improvement in goal units (trade-off).
+    p_joint : ndarray (q,)
+        Current joint probability that a run there meets every limit (and works).
+    predicted : dict[str, ndarray (q,)]
+        Predicted median of each response, natural units.
+    advice : str
+        One line: whether another batch is likely to pay.
+    message : str
+        One line: what was proposed and why.
+    replicate : ndarray (q,) of bool
+        True where a pick repeats a completed run.
+    """
+
+    X: np.ndarray
+    aim: list
+    gain: np.ndarray
+    p_joint: np.ndarray
+    predicted: dict
+    advice: str
+    message: str
+    replicate: np.ndarray = field(default=None)
+
+    def __post_init__(self):
+        if self.replicate is None:
+            self.replicate = np.zeros(len(self.X), dtype=bool)
+
+    def to_frame(self, factor_names, to_natural=None) -> pd.DataFrame:
+        """One row per proposed run: settings (natural units when ``to_natural`` is given), aim, gain,
+        ``p_joint``, ``<response>_predicted`` columns and the replicate flag."""
+        X = self.X if to_natural is None else np.asarray(to_natural(self.X), dtype=float)
+        frame = pd.DataFrame(X, columns=list(factor_names))
+        frame["aim"] = list(self.aim)
+        frame["gain"] = self.gain
+        frame["p_joint"] = self.p_joint
+        for name, values in self.predicted.items():
+            frame[f"{name}_predicted"] = values
+        frame["replicate"] = self.replicate
+        return frame
+
+    def to_dict(self) -> dict:
+        """JSON-safe form."""
+        return {"X": self.X.tolist(), "aim": list(self.aim), "gain": self.gain.tolist(),
+                "p_joint": self.p_joint.tolist(),
+                "predicted": {k: np.asarray(v).tolist() for k, v in self.predicted.items()},
+                "replicate": [bool(r) for r in self.replicate], "advice": self.advice,
+                "message": self.message}
+
+
+class Acquisition:
+    """Window and trade-off scores of candidate settings for one state of the models.
+
+    Parameters
+    ----------
+    surrogates : Surrogates
+    limits : list of (name, lo, hi)
+        Natural units, ``None`` for an open side.
+    goals : list of (name, sense, target)
+    X_runs : ndarray (n, d)
+        Coded settings of the completed runs.
+    confidence : float
+    seed : int
+        Seeds the common random numbers.
+
+    Attributes
+    ----------
+    models : dict
+        The response models in use (conditioned ones after :meth:`believe`).
+    front_, ref_ : ndarray
+        Current front (minimisation form) and reference point; ``scale_`` is the front's hypervolume
+        (or the reference box volume when the front is empty).
+    """
+
+    def __init__(self, surrogates, limits, goals, X_runs, confidence=0.95, seed=0):
+        self.limits, self.goals = list(limits or []), list(goals or [])
+        self.confidence = confidence
+        self.failure = surrogates.failure
+        used = [lim[0] for lim in self.limits] + [g[0] for g in self.goals]
+        missing = [n for n in used if n not in surrogates.models]
+        if missing:
+            raise InputError(f"limit or goal on '{missing[0]}': no fitted model for this response; fit it first")
+        self.models = {n: surrogates.models[n] for n in dict.fromkeys(used)}
+        self.X_runs = np.asarray(X_runs, dtype=float)
+        self._set_feasibility()
+        names = list(self.models)
+        s_win, s_goal = np.random.SeedSequence(seed).spawn(2)
+        self.eps_ = dict(zip(names, np.random.default_rng(s_win).standard_normal((len(names), N_SAMPLES))))
+        m = len(self.goals)
+        n_goal = N_SAMPLES if m < 3 else N_SAMPLES_MANY_GOALS
+        self.eps_goal_ = np.random.default_rng(s_goal).standard_normal((n_goal, m))
+        self.front_, self.ref_, self.scale_ = np.empty((0, m)), None, 1.0
+        if m:   # without completed runs, the reference comes from the models' training settings
+            X_data = self.X_runs if len(self.X_runs) else next(iter(self.models.values())).X_train_
+            F = self.objectives(X_data)[:, 0, :]
+            nadir, ideal = F.max(axis=0), F.min(axis=0)
+            self.ref_ = nadir + 0.1 * np.where(nadir > ideal, nadir - ideal, np.maximum(np.abs(nadir), 1.0))
+            self.front_ = F[self.p_joint(X_data) >= confidence] if len(self.X_runs) else self.front_
+            self.scale_ = hypervolume(self.front_, self.ref_) or float(np.prod(self.ref_ - ideal))
+
+    def _set_feasibility(self):
+        self.feas_ = (Feasibility(self.limits, Surrogates(self.models, self.failure), self.X_runs)
+                      if self.limits else None)
+
+    def p_works(self, X):
+        return np.ones(len(X)) if self.failure is None else self.failure.predict_proba(X)
+
+    def p_joint(self, X):
+        """Probability that a new run meets every limit and works (noise included)."""
+        return self.p_works(X) if self.feas_ is None else self.feas_.probabilities(X)[1]
+
+    def objectives(self, X, eps=None):
+        """Goals in minimisation form, (n, S, m): medians (S = 1) or draws ``mu + sd * eps``."""
+        cols = []
+        for k, (name, sense, target) in enumerate(self.goals):
+            model = self.models[name]
+            if eps is None:
+                z = np.asarray(model.predict(X, return_std=False))[:, None]
+            else:
+                mu, sd = model.predict(X, return_std=True, noise=False)
+                z = mu[:, None] + sd[:, None] * eps[:, k]
+            y = model.transform_.inverse(z)
+            cols.append(-y if sense == "maximize" else np.abs(y - target) if sense == "target" else y)
+        return np.stack(cols, axis=-1)
+
+    def window(self, X):
+        """Misclassification probability ``min(pi, 1 - pi)`` and ``pi`` = P(x truly in the window)."""
+        log_in = np.log(np.maximum(self.p_works(X), 1e-300))[:, None]
+        for name, lo, hi in self.feas_.limits_:
+            model = self.models[name]
+            mu, sd = model.predict(X, return_std=True, noise=False)
+            f = mu[:, None] + sd[:, None] * self.eps_[name]
+            p = limit_probability(f, getattr(model, "noise_std_", 0.0), lo, hi)
+            log_in = log_in + np.log(np.maximum(p, 1e-300))
+        pi = np.mean(log_in >= np.log(self.confidence), axis=1)
+        return np.minimum(pi, 1.0 - pi), pi
+
+    def tradeoff(self, X):
+        """Expected hypervolume improvement times the joint probability of meeting every limit."""
+        gain = expected_improvement(self.objectives(X, self.eps_goal_), self.front_, self.ref_)
+        return gain * self.p_joint(X)
+
+    def believe(self, x):
+        """Kriging believer: a new state with every model conditioned on its predicted mean at ``x``."""
+        x = np.asarray(x, dtype=float).reshape(1, -1)
+        new = copy.copy(self)
+        new.models = {n: m.condition(x, m.predict(x, return_std=False)) for n, m in self.models.items()}
+        new.X_runs = np.vstack([self.X_runs.reshape(-1, x.shape[1]), x])
+        new._set_feasibility()
+        if self.goals and self.p_joint(x)[0] >= self.confidence:
+            new.front_ = np.vstack([self.front_, self.objectives(x)[:, 0, :]])
+        return new
+
+
+def _on_grid(snap, U):
+    """Clip to the unit cube, snap to the steps, drop rows the snap moved outside."""
+    U = np.clip(np.asarray(U, dtype=float), 0.0, 1.0)
+    V = np.asarray(snap(U), dtype=float).reshape(U.shape)
+    inside = np.all((V >= -1e-12) & (V <= 1.0 + 1e-12), axis=1)
+    return np.clip(V[inside], 0.0, 1.0)
+
+
+def _distance(C, blocked):
+    return np.full(len(C), np.inf) if len(blocked) == 0 else cdist(C, blocked).min(axis=1)
+
+
+def _polish(score_fn, x0, s0, snap, blocked, min_distance):
+    """Short bounded Nelder-Mead on the negative score; keeps the snapped result only if it is better."""
+    d = len(x0)
+    simplex = np.clip(np.vstack([x0, x0 + 0.5 * LOCAL_STEP * np.eye(d)]), 0.0, 1.0)
+    res = minimize(lambda u: -score_fn(np.clip(u, 0.0, 1.0)[None])[0], x0, method="Nelder-Mead",
+                   bounds=[(0.0, 1.0)] * d,
+                   options={"maxfev": 20 + 20 * d, "xatol": 1e-3, "fatol": 1e-9, "initial_simplex": simplex})
+    xp = _on_grid(snap, res.x[None])
+    if len(xp) and _distance(xp, blocked)[0] >= min_distance:
+        sp = score_fn(xp)[0]
+        if sp > s0:
+            return xp[0], sp
+    return x0, s0
+
+
+def _pick(score_fn, base, X_runs, picks, min_distance, snap, rng):
+    """One pick: best free candidate (polished), or a replicate of a completed run if far better."""
+    s = score_fn(base)
+    centres = base[np.argsort(-s, kind="stable")[:N_CENTRES]]
+    d = base.shape[1]
+    jitter = LOCAL_STEP * rng.standard_normal((len(centres), N_LOCAL, d))
+    local = _on_grid(snap, (centres[:, None, :] + jitter).reshape(-1, d))
+    C, S = np.vstack([base, local]), np.concatenate([s, score_fn(local)])
+    blocked = np.vstack([X_runs, *picks]) if picks else X_runs
+    dist = _distance(C, blocked)
+    free = dist >= min_distance
+    x, sx = None, -np.inf
+    if free.any():
+        best = np.max(S[free])
+        ties = free & (S >= best - 1e-12 * max(1.0, abs(best)))
+        i = np.flatnonzero(ties)[np.argmax(dist[ties])]   # equal scores: farthest from all runs
+        x, sx = _polish(score_fn, C[i], S[i], snap, blocked, min_distance)
+    runs = np.unique(X_runs, axis=0) if len(X_runs) else X_runs
+    if picks and len(runs):
+        runs = runs[_distance(runs, np.vstack(picks)) >= min_distance]
+    if len(runs):
+        sr = score_fn(runs)
+        j = int(np.argmax(sr))
+        if x is None or (sr[j] > 0 and sr[j] > REPLICATE_MARGIN * max(sx, 0.0)):
+            return runs[j], sr[j], True
+    if x is None:      # nothing free and nothing to repeat: the best candidate regardless of distance
+        return C[np.argmax(S)], np.max(S), True
+    return x, sx, False
+
+
+def _aims(aim, count, found, has_limits, has_goals):
+    if not has_goals:
+        return ["window"] * count
+    if not has_limits:
+        return ["tradeoff"] * count
+    return [aim] * count if aim != "balanced" else [("window", "tradeoff")[(found + j) % 2] for j in range(count)]
+
+
+def _advice(acq, base, base_tradeoff):
+    parts, pay = [], False
+    if acq.limits:
+        pi = acq.window(base)[1]
+        share = float(np.mean((pi > 1.0 - acq.confidence) & (pi < acq.confidence)))
+        parts.append(f"{share:.0%} of the space is uncertain")
+        pay |= share > PAY_UNCERTAIN
+    if acq.goals:
+        rel = float(np.max(acq.tradeoff(base_tradeoff))) / acq.scale_ if acq.scale_ > 0 else 0.0
+        what = "the front" if len(acq.front_) else "the reference box (no completed run meets every limit yet)"
+        parts.append(f"the best expected hypervolume gain is {rel:.1%} of {what}")
+        pay |= rel > PAY_GAIN
+    lead = "another batch is still likely to pay: " if pay else "little left to gain: "
+    tail = "" if pay else "; confirm with verification runs"
+    return lead + "; ".join(parts) + tail
+
+
+def _check(surrogates, goals, X_runs, count, aim, confidence):
+    if not isinstance(count, (int, np.integer)) or count < 1:
+        raise InputError(f"suggest: count = {count!r}; ask for at least 1 run")
+    if aim not in AIMS:
+        raise InputError(f"suggest: aim '{aim}' is unknown; use one of {', '.join(AIMS)}")
+    if not 0.5 < confidence < 1.0:
+        raise InputError(f"suggest: confidence = {confidence}; it must lie between 0.5 and 1 (e.g. 0.95)")
+    for name, sense, target in goals:
+        if sense not in SENSES:
+            raise InputError(f"goal on '{name}': sense '{sense}' is unknown; use one of {', '.join(SENSES)}")
+        if sense == "target" and target is None:
+            raise InputError(f"goal on '{name}': goal = \"target\" needs target = <value>")
+    d = next(iter(surrogates.models.values())).X_train_.shape[1]
+    X_runs = np.asarray(X_runs, dtype=float)
+    X_runs = X_runs.reshape(0, d) if X_runs.size == 0 else X_runs
+    if X_runs.ndim != 2 or X_runs.shape[1] != d or not np.all(np.isfinite(X_runs)):
+        raise InputError(f"suggest: completed run settings must be a finite table with {d} factor columns")
+    return X_runs, d
+
+
+def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence=0.95, seed=0,
+            snap=None, n_candidates=None, min_distance=None) -> Suggestions:
+    """Propose ``count`` next runs (see the module docstring for the criteria).
+
+    Parameters
+    ----------
+    surrogates : Surrogates
+    limits : list of (name, lo, hi)
+        Natural units; ``None`` for an open side.
+    goals : list of (name, sense, target)
+        ``sense`` in maximize | minimize | target.
+    X_runs : ndarray (n, d)
+        Coded settings of completed runs (failed ones included: they are not repeated).
+    count : int
+    aim : {"balanced", "window", "tradeoff"}
+        ``balanced`` alternates, starting with the window while no setting reaches the confidence.
+        Without goals every pick aims at the window; without limits, at the trade-off.
+    confidence : float
+    seed : int
+    snap : callable (m, d) -> (m, d) or None
+        Rounds coded settings to each factor's step.
+    n_candidates : int or None
+        Sobol candidates (default 1024 for d <= 2, 2048 for d <= 4, else 4096).
+    min_distance : float or None
+        Default ``0.05 * sqrt(d)``.
+
+    Returns
+    -------
+    Suggestions
+    """
+    limits, goals = list(limits or []), list(goals or [])
+    if not limits and not goals:
+        raise InputError("study.toml [[response]]: no limits and no goals; give a response a min/max or a goal")
+    X_runs, d = _check(surrogates, goals, X_runs, count, aim, confidence)
+    acq = Acquisition(surrogates, limits, goals, X_runs, confidence, seed)
+    snap = snap if snap is not None else (lambda U: U)
+    n_candidates = n_candidates or (1024 if d <= 2 else 2048 if d <= 4 else 4096)
+    min_distance = 0.05 * np.sqrt(d) if min_distance is None else float(min_distance)
+    base = _on_grid(snap, sobol(d, n_candidates, seed))
+    if len(base) == 0:
+        raise InputError("suggest: no setting survives rounding to the factor steps; check each step")
+    base_tradeoff = base if len(goals) < 3 else base[:MAX_CANDIDATES_MANY_GOALS]
+    avoid = acq.failure is not None and bool(np.any(acq.p_works(base) >= MIN_WORKS))
+    found = bool(np.any(acq.p_joint(base) >= confidence))
+    aims = _aims(aim, count, found, bool(limits), bool(goals))
+    rng = np.random.default_rng([seed, 1])
+
+    picks, gains, replicate, state = [], [], [], acq
+    for a in aims:
+        def score_fn(X, state=state, a=a):
+            s = state.window(X)[0] if a == "window" else state.tradeoff(X)
+            return np.where(state.p_works(X) >= MIN_WORKS, s, -1.0) if avoid else s
+        x, g, rep = _pick(score_fn, base if a == "window" else base_tradeoff, X_runs, picks, min_distance,
+                          snap, rng)
+        picks.append(np.asarray(x, dtype=float))
+        gains.append(float(g))
+        replicate.append(rep)
+        state = state.believe(x)
+
+    X = np.vstack(picks)
+    predicted = {n: m.transform_.inverse(np.asarray(m.predict(X, return_std=False)))
+                 for n, m in surrogates.models.items()}
+    n_win = aims.count("window")
+    msg = (f"{count} run{'s' if count > 1 else ''} proposed: {n_win} to sharpen the window edge, "
+           f"{count - n_win} to improve the trade-off")
+    if any(replicate):
+        rows = ", ".join(str(i + 1) for i, r in enumerate(replicate) if r)
+        msg += f"; run {rows} repeats a completed run (replicate: it scores far above any new setting)"
+    if avoid:
+        msg += "; settings likely to fail (P(works) < 0.5) avoided"
+    return Suggestions(X=X, aim=aims, gain=np.array(gains), p_joint=acq.p_joint(X), predicted=predicted,
+                       advice=_advice(acq, base, base_tradeoff), message=msg, replicate=np.array(replicate))
