@@ -1,5 +1,12 @@
 """windowfinder: process windows with stated confidence from few, expensive, noisy runs."""
 
+import os as _os
+
+# The matrices here are small (tens to a few thousand runs); multi-threaded BLAS costs more in thread
+# start-up than it gains and oversubscribes the cores a campaign's workers need. Respect a user's choice.
+for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
+    _os.environ.setdefault(_var, "1")
+
 __version__ = "0.1.0"
 
 from .errors import InputError  # noqa: E402

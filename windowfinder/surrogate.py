@@ -18,7 +18,7 @@ from scipy.linalg import cho_solve, solve_triangular
 from scipy.special import expit
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.gaussian_process import GaussianProcessClassifier, GaussianProcessRegressor
-from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
+from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponentiation, Matern, WhiteKernel
 
 from windowfinder.errors import InputError
 
@@ -32,6 +32,7 @@ from windowfinder.errors import InputError
 CONSTANT_BOUNDS = (1e-2, 1e2)
 LENGTH_SCALE_BOUNDS = (0.05, 20.0)
 NOISE_BOUNDS = (1e-6, 1.0)
+TREND_BOUNDS = (1e-4, 1e2)  # prior variance of the quadratic trend, standardised units
 JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (scikit-learn default)
 
 TRANSFORM_KINDS = ("none", "log", "logit")
@@ -218,17 +219,33 @@ class GPModel(_ResponseModel):
 
     kind = "gp"
 
-    def __init__(self, transform="none", bounds=None, n_restarts=5, random_state=0, nu=2.5):
+    def __init__(self, transform="none", bounds=None, n_restarts=5, random_state=0, nu=2.5,
+                 trend="quadratic"):
         self.transform = transform
         self.bounds = bounds
         self.n_restarts = n_restarts
         self.random_state = random_state
         self.nu = nu
+        self.trend = trend
 
     def _kernel(self, d):
-        return (ConstantKernel(1.0, CONSTANT_BOUNDS)
-                * Matern(length_scale=np.full(d, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=self.nu)
-                + WhiteKernel(1e-2, NOISE_BOUNDS))
+        """Signal ``C * Matern`` (+ a quadratic trend) plus white noise.
+
+        With ``trend="quadratic"`` the signal adds ``c_t * (1 + x.x')^2``: a Bayesian full second-order
+        polynomial whose coefficients have a Gaussian prior with variance ``c_t`` fitted by marginal
+        likelihood — the explicit-basis-function construction of Rasmussen & Williams (2006, §2.7)
+        written as a kernel. With tens of runs it lets the model carry the smooth curvature a response
+        surface would, and the Matern part the rest; where the data do not support a trend, ``c_t``
+        shrinks towards its lower bound.
+        """
+        signal = ConstantKernel(1.0, CONSTANT_BOUNDS) * Matern(
+            length_scale=np.full(d, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=self.nu)
+        if self.trend == "quadratic":
+            signal = signal + ConstantKernel(0.1, TREND_BOUNDS) * Exponentiation(
+                DotProduct(sigma_0=1.0, sigma_0_bounds="fixed"), 2)
+        elif self.trend != "none":
+            raise InputError(f"GP trend '{self.trend}' is unknown; use quadratic or none")
+        return signal + WhiteKernel(1e-2, NOISE_BOUNDS)
 
     def fit(self, X, y):
         """Fit to coded settings ``X`` (n, d) and natural-unit responses ``y`` (n,)."""
@@ -262,9 +279,11 @@ class GPModel(_ResponseModel):
         self.X_train_, self.z_train_ = X, z
         k = gp.kernel_
         self._signal = k.k1
-        self.signal_std_ = self.y_scale_ * float(np.sqrt(k.k1.k1.constant_value))
+        stationary = k.k1.k1 if self.trend == "quadratic" else k.k1
+        self.signal_std_ = self.y_scale_ * float(np.sqrt(stationary.k1.constant_value))
         self.noise_std_ = self.y_scale_ * float(np.sqrt(k.k2.noise_level))
-        self.length_scales_ = np.broadcast_to(np.asarray(k.k1.k2.length_scale, float), (X.shape[1],)).copy()
+        self.length_scales_ = np.broadcast_to(np.asarray(stationary.k2.length_scale, float),
+                                              (X.shape[1],)).copy()
 
     def _moments(self, X, return_std, noise):
         # GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26) with the fitted signal kernel, so the
