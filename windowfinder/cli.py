@@ -166,6 +166,44 @@ def cmd_tradeoff(args):
     print(f"written: {path} ({len(tr.frame)} settings)")
 
 
+def cmd_suggest(args):
+    from .export import write_csv
+
+    study = _load(args)
+    if args.count < 1:
+        raise InputError(f"--count {args.count}: give at least 1")
+    fit = study.fit()
+    _warn(fit.warnings)
+    print("choosing the next runs ...", file=sys.stderr)
+    nxt = study.suggest(args.count, aim=args.aim, fit=fit, confidence=args.confidence)
+    path = write_csv(_out(study, "next.csv"), nxt.frame)
+    study.add_runs(nxt.planned_rows(study.spec))
+    cols = ["run", *study.spec.factor_names, "aim", "gain", "p_joint"]
+    print(nxt.frame[cols].to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    print(nxt.message)
+    print(f"advice: {nxt.advice}")
+    if study.spec.has_safety:
+        from .answers import CAUTION_SAFETY
+
+        names = ", ".join(r.name for r in study.spec.limited if r.is_safety)
+        print("CAUTION: " + CAUTION_SAFETY.format(names=names))
+    print(f"written: {path}; {len(nxt.frame)} planned runs appended to {study.runs_path}")
+
+
+def cmd_run(args):
+    from .campaign import run_campaign
+
+    res = run_campaign(args.study_dir, command=args.command, function=args.function, budget=args.budget,
+                       initial=args.initial, batch=args.batch, workers=args.workers,
+                       scheduler=args.scheduler, dask_local=args.dask_local, run_timeout=args.run_timeout,
+                       aim=args.aim, progress=lambda line: print(line, file=sys.stderr, flush=True))
+    print(f"{res.runs_done} completed runs of budget {res.budget} ({res.failed} failed) in "
+          f"{res.batches} batches, {res.elapsed:.1f} s; {res.stopped}")
+    for c in res.conflicts:
+        print(f"note: {c}")
+    print(f"next: 'windowfinder window {args.study_dir}' and 'windowfinder report {args.study_dir}'")
+
+
 def cmd_testplan(args):
     from .answers import build_window
     from .export import write_csv
@@ -239,6 +277,22 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--pick", choices=("knee", "desirability"), default="knee",
                    help="how the balanced pick is chosen")
     s.add_argument("--mean", action="store_true", help="chance constraint on the process mean")
+    s = verb("suggest", cmd_suggest, "propose the next batch of runs and append them as planned")
+    s.add_argument("--count", type=int, default=4, help="runs in the batch (default 4)")
+    s.add_argument("--aim", choices=("window", "tradeoff", "balanced"), default="balanced")
+    s.add_argument("--confidence", type=float, help="default: the study's confidence")
+    s = verb("run", cmd_run, "closed-loop campaign: suggest, evaluate, append, refit until the budget")
+    g = s.add_mutually_exclusive_group(required=True)
+    g.add_argument("--command", help='program run per batch, e.g. "python sim.py {in} {out}" (no shell)')
+    g.add_argument("--function", help="Python callable module:function(settings) -> responses")
+    s.add_argument("--budget", type=int, required=True, help="completed runs to end with")
+    s.add_argument("--initial", type=int, help="space-filling runs first (default 10 per factor)")
+    s.add_argument("--batch", type=int, default=1, help="runs proposed per batch")
+    s.add_argument("--aim", choices=("window", "tradeoff", "balanced"), default="balanced")
+    s.add_argument("--workers", type=int, help="local worker processes (default: cores)")
+    s.add_argument("--scheduler", help="address of an existing Dask scheduler, tcp://host:port")
+    s.add_argument("--dask-local", type=int, metavar="N", help="start a local Dask cluster of N workers")
+    s.add_argument("--run-timeout", type=float, metavar="S", help="seconds one command may run")
     s = verb("testplan", cmd_testplan, "plan verification runs inside the window")
     s.add_argument("--runs", type=int, help="number of runs (default: centre x3 + corners)")
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
@@ -248,7 +302,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 #: Verbs the demo runs after fit, with their options.
-DEMO_VERBS: list = [["window"], ["tradeoff"], ["testplan"]]
+DEMO_VERBS: list = [["window"], ["tradeoff"], ["suggest", "--count", "4"], ["testplan"]]
 
 
 def main(argv=None) -> int:

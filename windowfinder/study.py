@@ -215,6 +215,54 @@ class Study:
             warnings += [f"{dg.response}: {w}" for w in dg.warnings]
         return FitResult(sur, diags, X, warnings)
 
+    def suggest(self, count: int, aim: str = "balanced", fit: FitResult | None = None,
+                confidence: float | None = None, seed: int | None = None) -> NextRuns:
+        """The next ``count`` runs that most sharpen the window or improve the trade-off."""
+        from .answers import limits_of
+        from .nextruns import suggest
+
+        fit = self.fit() if fit is None else fit
+        spec = self.spec
+        confidence = spec.confidence if confidence is None else confidence
+        # a fresh candidate set for every state of the run table, reproducible from the seed
+        seed = (spec.seed if seed is None else seed) + len(self.runs)
+        planned = self.runs.X_coded(self.runs.planned())
+        X_known = np.vstack([fit.X_runs, planned]) if len(planned) else fit.X_runs
+
+        def snap(U):
+            return spec.to_coded(spec.round_to_step(spec.to_natural(U)))
+
+        sug = suggest(fit.surrogates, limits_of(spec), [(r.name, r.goal, r.target) for r in spec.goals],
+                      X_known, count, aim=aim, confidence=confidence, seed=seed, snap=snap)
+        frame = sug.to_frame(spec.factor_names,
+                             to_natural=lambda U: spec.round_to_step(spec.to_natural(U)))
+        frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
+        return NextRuns(frame, sug.advice, sug.message, sug)
+
+
+@dataclass
+class NextRuns:
+    """Proposed next runs: ``frame`` (run ids, natural settings, aim, expected gain, predictions)."""
+
+    frame: pd.DataFrame
+    advice: str
+    message: str
+    suggestions: object = None
+
+    def to_frame(self) -> pd.DataFrame:
+        return self.frame.copy()
+
+    def to_dict(self) -> dict:
+        return {"advice": self.advice, "message": self.message, "runs": self.frame.to_dict("records")}
+
+    def planned_rows(self, spec: StudySpec) -> pd.DataFrame:
+        rows = self.frame[["run", *spec.factor_names]].copy()
+        for r in spec.response_names:
+            rows[r] = np.nan
+        rows["status"] = "planned"
+        rows["note"] = [f"suggested ({a})" for a in self.frame["aim"]]
+        return rows
+
 
 def create_study(directory, example: str | None = None, name: str | None = None) -> Path:
     """Create a study folder from the template or a bundled example (never overwrites)."""
