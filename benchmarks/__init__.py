@@ -1,0 +1,1 @@
+"""Benchmarks run by ``make bench``; they print figures and write docs/benchmarks.md (no timed asserts)."""
