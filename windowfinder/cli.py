@@ -308,7 +308,16 @@ DEMO_VERBS: list = [["window"], ["tradeoff"], ["suggest", "--count", "4"], ["tes
 def main(argv=None) -> int:
     try:
         args = build_parser().parse_args(argv)
-        args.fn(args)
+        if args.verb in ("new", "check"):
+            args.fn(args)
+            return 0
+        from .lock import StudyLock
+
+        with StudyLock(args.study_dir) as lock:
+            if lock.stale_pid_:
+                print(f"note: took over a stale lock of pid {lock.stale_pid_} (that process is gone)",
+                      file=sys.stderr)
+            args.fn(args)
         return 0
     except InputError as e:
         print(f"windowfinder: {e}", file=sys.stderr)
