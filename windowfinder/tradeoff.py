@@ -41,14 +41,7 @@ from scipy.stats import qmc
 
 from windowfinder.errors import InputError
 
-__all__ = [
-    "TradeoffResult",
-    "find_tradeoff",
-    "knee_point",
-    "desirability",
-    "igd",
-    "normalised_igd",
-]
+__all__ = ["TradeoffResult", "find_tradeoff", "knee_point", "desirability", "igd", "normalised_igd"]
 
 #: Default population size and generations; a 2-4 factor study on GP surrogates takes seconds.
 DEFAULT_POP_SIZE = 100
@@ -106,17 +99,10 @@ class TradeoffResult:
 
     def to_dict(self) -> dict:
         """JSON-safe summary."""
-        return {
-            "found": bool(self.found),
-            "message": self.message,
-            "confidence": float(self.confidence),
-            "best_probability": float(self.best_probability),
-            "pick": int(self.pick),
-            "pick_method": self.pick_method,
-            "X": self.X.tolist(),
-            "F": self.F.tolist(),
-            "p_joint": self.p_joint.tolist(),
-        }
+        return {"found": bool(self.found), "message": self.message, "confidence": float(self.confidence),
+                "best_probability": float(self.best_probability), "pick": int(self.pick),
+                "pick_method": self.pick_method, "X": self.X.tolist(), "F": self.F.tolist(),
+                "p_joint": self.p_joint.tolist()}
 
 
 class _ChanceConstrainedProblem(Problem):
