@@ -46,9 +46,7 @@ def objectives_of(spec: StudySpec, surrogates):
     def fn(X):
         cols = []
         for r in goals:
-            m = surrogates.models[r.name]
-            y = m.transform_.inverse(m.predict(X, return_std=False))
-            y = np.asarray(y[0] if isinstance(y, tuple) else y, dtype=float)
+            y = _median(surrogates.models[r.name], X)
             cols.append(-y if r.goal == "maximize" else y if r.goal == "minimize"
                         else np.abs(y - r.target))
         return np.column_stack(cols)
@@ -206,30 +204,59 @@ class TradeoffTable:
 
 def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_only: bool = False,
                    pick: str = "knee", seed: int | None = None, **search) -> TradeoffTable:
-    """Constrained multi-objective search on the models (see :func:`tradeoff.find_tradeoff`)."""
-    from .tradeoff import find_tradeoff
+    """Constrained multi-objective search on the models (see :func:`tradeoff.find_tradeoff`).
+
+    Front settings are rounded to each factor's step afterwards; a rounded setting whose probability
+    falls below the confidence is dropped, and the balanced pick is chosen among the rest.
+    """
+    from .tradeoff import desirability, find_tradeoff, knee_point
 
     confidence = spec.confidence if confidence is None else float(confidence)
     seed = spec.seed if seed is None else seed
     obj_fn, names = objectives_of(spec, fit.surrogates)
     prob_fn = feasibility_of(spec, fit, mean_only).joint if spec.limited else \
         (lambda X: np.ones(len(X)))
-    goals = None
-    if pick == "desirability":
-        goals = _desirability_goals(spec, fit)
+    goals = _desirability_goals(spec, fit)
+
+    def desir(X):
+        values = np.column_stack([_median(fit.surrogates.models[r.name], X) for r in spec.goals])
+        return desirability(values, goals)
+
     res = find_tradeoff(obj_fn, prob_fn, spec.d, confidence, len(names), seed=seed, pick=pick,
-                        desirability=goals, **search)
+                        desirability=desir if pick == "desirability" else None, **search)
     X = spec.round_to_step(spec.to_natural(res.X)) if len(res.X) else np.empty((0, spec.d))
+    U = spec.to_coded(X) if len(X) else np.empty((0, spec.d))
+    p = prob_fn(U) if len(U) else np.empty(0)
+    keep = p >= confidence
+    X, U, p = X[keep], U[keep], p[keep]
     frame = pd.DataFrame(X, columns=spec.factor_names)
+    chosen = -1
     if len(X):
-        U = spec.to_coded(X)
         for r in spec.responses:
             med, lo, hi = fit.surrogates.models[r.name].predict_interval(U, level=0.95, noise=True)
             frame[f"{r.name}_pred"], frame[f"{r.name}_lo95"], frame[f"{r.name}_hi95"] = med, lo, hi
-        frame["p_all_limits"] = prob_fn(U)
-    frame["balanced_pick"] = np.arange(len(frame)) == res.pick
-    return TradeoffTable(frame, bool(res.found), res.pick_method, res.message, confidence,
+        frame["p_all_limits"] = p
+        chosen = knee_point(obj_fn(U)) if pick == "knee" else int(np.argmax(desir(U)))
+    frame["balanced_pick"] = np.arange(len(frame)) == chosen
+    found = bool(res.found and len(frame))
+    if found:
+        message = (f"{len(frame)} settings on the trade-off front meet all limits with probability "
+                   f">= {confidence:g}; balanced pick by {res.pick_method}")
+        if (~keep).any():
+            message += f" ({int((~keep).sum())} dropped after rounding to the factor steps)"
+    elif res.found:
+        message = "no setting on the step grid keeps the confidence; refine the factor steps"
+    else:
+        message = res.message
+    return TradeoffTable(frame, found, res.pick_method, message, confidence,
                          cautions(spec, fit, None, mean_only))
+
+
+def _median(model, X):
+    """Predicted median in natural units (inverse transform of the latent mean)."""
+    mean = model.predict(X, return_std=False)
+    mean = mean[0] if isinstance(mean, tuple) else mean
+    return model.transform_.inverse(np.asarray(mean, dtype=float))
 
 
 def _desirability_goals(spec: StudySpec, fit) -> list[dict]:
@@ -237,7 +264,7 @@ def _desirability_goals(spec: StudySpec, fit) -> list[dict]:
     goals = []
     for r in spec.goals:
         m = fit.surrogates.models[r.name]
-        seen = m.transform_.inverse(np.asarray(m.z_train_ if hasattr(m, "z_train_") else [0.0, 1.0]))
+        seen = m.transform_.inverse(np.asarray(m.z_train_))
         low = r.min if r.min is not None else float(np.min(seen))
         high = r.max if r.max is not None else float(np.max(seen))
         goals.append({"goal": r.goal, "low": low, "high": high, "target": r.target, "weight": 1.0})

@@ -65,8 +65,39 @@ def main(argv=None) -> int:
     step("fit", ["fit", str(folder)])
     for verb in cli.DEMO_VERBS:
         step(verb[0], [verb[0], str(folder), *verb[1:]])
-    print(f"\noutputs are in {folder.resolve() / 'out'}")
+    summary(folder)
     return 0
+
+
+def summary(folder: Path) -> None:
+    """The answer in one screen: window table, balanced pick, cautions, where the files are."""
+    import json
+
+    out = folder.resolve() / "out"
+    win = json.loads((out / "window.json").read_text())
+    print("\n" + "=" * 78 + "\nSUMMARY")
+    if win["found"]:
+        print(f"process window at confidence {win['confidence']:g} "
+              f"(lowest P(all limits met) inside = {win['min_probability']:.3f}):")
+        for f in win["factors"]:
+            print(f"  {f['name']:<16} {f['low']:>10.4g} .. {f['high']:<10.4g} {f['unit']}")
+    else:
+        print(f"no window at confidence {win['confidence']:g}: {win['message']}")
+    trade = pd.read_csv(out / "tradeoff.csv")
+    pick = trade[trade["balanced_pick"]]
+    if len(pick):
+        row = pick.iloc[0]
+        names = [c for c in trade.columns if not c.endswith(("_pred", "_lo95", "_hi95"))
+                 and c not in ("p_all_limits", "balanced_pick")]
+        print("balanced pick: " + ", ".join(f"{n} = {row[n]:.4g}" for n in names)
+              + f"  (P(all limits met) = {row['p_all_limits']:.3f})")
+    print("cautions:")
+    for c in win["cautions"]:
+        print(f"  - {c}")
+    report = out / "report.html"
+    if report.exists():
+        print(f"report: {report}")
+    print(f"all outputs: {out}")
 
 
 if __name__ == "__main__":
