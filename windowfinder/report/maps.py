@@ -1,0 +1,314 @@
+"""Maps over two factors: predicted responses with their limit lines, and the probability of meeting
+every limit with the uncertain and untrusted regions hatched.
+
+With more than two factors each map is a 2-D slice through one point (by default the window centre);
+the other factors are held there. Axes are in natural units; the window box, its guard band and the
+set point are drawn at the coordinates the window spec exports (``window.json``); runs are projected
+onto the slice.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+import pandas as pd
+from matplotlib import patheffects
+from matplotlib.colors import LogNorm
+from matplotlib.lines import Line2D
+from matplotlib.patches import Patch, Rectangle
+
+from ..errors import InputError
+from .figures import BLACK, ORANGE, VERMILLION, label, log_scale, new_figure
+
+GRID = 60
+_HALO = [patheffects.withStroke(linewidth=3.5, foreground="white")]
+
+
+@dataclass
+class SliceGrid:
+    """Predictions on an ``m x m`` grid over two factors, reused by every map of that pair.
+
+    Attributes
+    ----------
+    pair : (int, int)
+        Factor indices on the x and y axes.
+    centre : ndarray (d,)
+        Coded point the slice passes through (other factors held there).
+    xs, ys : ndarray (m,)
+        Axis values, natural units.
+    U : ndarray (m * m, d)
+        Coded grid points, x varying fastest.
+    means : dict[str, ndarray (m, m)]
+        Predicted median of every response, natural units (rows = y, columns = x).
+    fmap : FeasibilityMap or None
+        Probabilities, classes and trust flags (None when the study has no limits).
+    """
+
+    pair: tuple
+    centre: np.ndarray
+    xs: np.ndarray
+    ys: np.ndarray
+    U: np.ndarray
+    means: dict
+    fmap: object = None
+
+    def field(self, values) -> np.ndarray:
+        """Reshape per-point values (m * m,) to the grid (m, m)."""
+        return np.asarray(values).reshape(len(self.ys), len(self.xs))
+
+
+def slice_centre(spec, window=None) -> np.ndarray:
+    """Coded centre of the window box; else the most probable point found; else the study centre."""
+    if window is not None and window.found:
+        lo, hi = window.coded_box(spec)
+        return (lo + hi) / 2.0
+    if window is not None and window.best_point:
+        return spec.to_coded([window.best_point[f] for f in spec.factor_names])[0]
+    return np.full(spec.d, 0.5)
+
+
+def slice_grid(spec, fit, pair, centre=None, m: int = GRID, confidence=None, mean_only: bool = False,
+               feasibility=None) -> SliceGrid:
+    """Predictions for one pair of factors on an ``m x m`` grid through ``centre`` (coded)."""
+    i, j = _check_pair(spec, pair)
+    centre = np.full(spec.d, 0.5) if centre is None else np.asarray(centre, float).copy()
+    g = np.linspace(0.0, 1.0, m)
+    gx, gy = np.meshgrid(g, g)
+    U = np.repeat(centre[None], m * m, axis=0)
+    U[:, i], U[:, j] = gx.ravel(), gy.ravel()
+    means = {}
+    for r in spec.responses:
+        model = fit.surrogates.models[r.name]
+        means[r.name] = model.transform_.inverse(model.predict(U, return_std=False)).reshape(m, m)
+    fmap = None
+    if spec.limited:
+        if feasibility is None:
+            from ..answers import feasibility_of
+            feasibility = feasibility_of(spec, fit, mean_only)
+        conf = spec.confidence if confidence is None else float(confidence)
+        fmap = feasibility.evaluate(U, max(conf, 0.5 + 1e-9))
+    f_i, f_j = spec.factors[i], spec.factors[j]
+    return SliceGrid((i, j), centre, f_i.to_natural(g), f_j.to_natural(g), U, means, fmap)
+
+
+def _check_pair(spec, pair):
+    i, j = (int(p) for p in pair)
+    if i == j or not (0 <= i < spec.d and 0 <= j < spec.d):
+        raise InputError(f"map pair {pair}: give two different factor indices between 0 and {spec.d - 1}")
+    return i, j
+
+
+def _grid_for(spec, fit, window, pair, grid):
+    if grid is not None:
+        return grid
+    conf = window.confidence if window is not None else None
+    mean_only = bool(getattr(window, "mean_only", False))
+    return slice_grid(spec, fit, pair, slice_centre(spec, window), confidence=conf, mean_only=mean_only)
+
+
+def _axes(ax, width=5.0, height=4.2):
+    if ax is not None:
+        return ax.figure, ax
+    fig, axes = new_figure(width, height)
+    return fig, axes[0, 0]
+
+
+def _setting(frame, spec, i, j):
+    if frame is None or len(frame) == 0:
+        return np.empty(0), np.empty(0)
+    names = spec.factor_names
+    return frame[names[i]].to_numpy(float), frame[names[j]].to_numpy(float)
+
+
+def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=None, centre=None):
+    """Window box, guard band, set point, slice point and runs on a map in natural units.
+
+    The window rectangle has ``gid="window"`` and the guard band ``gid="guard band"``; runs are
+    ``"done runs"``, ``"failed runs"``, ``"suggested runs"``.
+    """
+    i, j = pair
+    handles = []
+    if window is not None and window.found:
+        fi, fj = window.factors[i], window.factors[j]
+        box = Rectangle((fi["low"], fj["low"]), fi["high"] - fi["low"], fj["high"] - fj["low"], fill=False,
+                        edgecolor=BLACK, lw=2.0, gid="window", zorder=5, path_effects=_HALO)
+        ax.add_patch(box)
+        handles.append(Line2D([], [], color=BLACK, lw=2, label="window"))
+        if any(f.get("tolerance") for f in (fi, fj)):
+            ax.add_patch(Rectangle((fi["guard_low"], fj["guard_low"]), fi["guard_high"] - fi["guard_low"],
+                                   fj["guard_high"] - fj["guard_low"], fill=False, edgecolor=BLACK,
+                                   lw=1.0, ls="--", gid="guard band", zorder=5))
+            handles.append(Line2D([], [], color=BLACK, lw=1, ls="--", label="window ± tolerance"))
+    if window is not None and window.set_point:
+        sp = window.set_point
+        ax.plot(sp[spec.factor_names[i]], sp[spec.factor_names[j]], marker="P", ms=12, color=ORANGE,
+                mec=BLACK, ls="none", zorder=7, gid="set point")
+        handles.append(Line2D([], [], marker="P", color=ORANGE, mec=BLACK, ls="none", label="set point"))
+    elif centre is not None and spec.d > 2:
+        c = spec.to_natural(centre)[0]
+        ax.plot(c[i], c[j], marker="+", ms=10, color=BLACK, ls="none", zorder=6, path_effects=_HALO)
+        handles.append(Line2D([], [], marker="+", color=BLACK, ls="none", label="slice point"))
+    if runs is not None and len(runs):
+        status = runs["status"].astype(str) if "status" in runs else pd.Series("done", index=runs.index)
+        for key, marker, face, text in (("done", "o", "white", "done runs"),
+                                        ("failed", "X", VERMILLION, "failed runs")):
+            x, y = _setting(runs[status == key], spec, i, j)
+            if len(x):
+                ax.plot(x, y, marker=marker, ms=6, mfc=face, mec=BLACK, mew=0.8, ls="none", zorder=6,
+                        gid=text)
+                handles.append(Line2D([], [], marker=marker, mfc=face, mec=BLACK, ls="none", label=text))
+    x, y = _setting(suggestions, spec, i, j)
+    if len(x):
+        ax.plot(x, y, marker="D", ms=7, mfc=ORANGE, mec=BLACK, mew=0.8, ls="none", zorder=6,
+                gid="suggested runs")
+        handles.append(Line2D([], [], marker="D", mfc=ORANGE, mec=BLACK, ls="none", label="suggested runs"))
+    fx, fy = spec.factors[i], spec.factors[j]
+    ax.set_xlim(fx.low, fx.high)
+    ax.set_ylim(fy.low, fy.high)
+    ax.set_xlabel(label(fx.name, fx.unit))
+    ax.set_ylabel(label(fy.name, fy.unit))
+    return handles
+
+
+def map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, suggestions=None,
+               grid=None, ax=None, legend=True):
+    """Predicted median of one response over two factors, with a line at each of its limits.
+
+    Parameters
+    ----------
+    spec : StudySpec
+    fit : FitResult
+    window : ProcessWindow, optional
+        Drawn as a box (and guard band, set point); its centre is the slice point.
+    pair : (int, int)
+        Factor indices for the x and y axes.
+    response : str, optional
+        Default: the first limited response (safety first), else the first response.
+    runs, suggestions : DataFrame, optional
+        Runs (factor columns in natural units, ``status``) and proposed runs, drawn as markers.
+    grid : SliceGrid, optional
+        Precomputed predictions (reused across maps of the same pair).
+    ax : Axes, optional
+        Draw into this axes instead of a new figure.
+    legend : bool
+        Draw a legend on the axes (the handles are kept in ``ax.legend_handles_`` either way).
+
+    Returns
+    -------
+    Figure
+        The limit lines form a contour set with ``gid="limit"`` whose ``levels`` are the limit values.
+    """
+    grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
+    r = spec.response(response) if response is not None else (spec.limited or list(spec.responses))[0]
+    fig, ax = _axes(ax)
+    Z = grid.means[r.name]
+    lo, hi = float(np.nanmin(Z)), float(np.nanmax(Z))
+    if log_scale(r, lo, hi):   # modelled on a log scale and spanning decades: show it on one
+        levels = np.geomspace(lo, hi, 13)
+        cf = ax.contourf(grid.xs, grid.ys, Z, levels=levels, norm=LogNorm(lo, hi), cmap="cividis")
+        fig.colorbar(cf, ax=ax, label=label(f"predicted {r.name}", r.unit), ticks=levels[::3],
+                     format="{x:.3g}")
+    else:
+        cf = ax.contourf(grid.xs, grid.ys, Z, levels=12, cmap="cividis")
+        fig.colorbar(cf, ax=ax, label=label(f"predicted {r.name}", r.unit))
+    handles = []
+    limits = sorted(v for v in (r.min, r.max) if v is not None)
+    if limits:
+        cs = ax.contour(grid.xs, grid.ys, Z, levels=limits, colors=VERMILLION, linewidths=2.2, zorder=4)
+        cs.set_gid("limit")
+        if np.nanmin(Z) <= max(limits) and np.nanmax(Z) >= min(limits):
+            ax.clabel(cs, fmt=lambda v: f"limit {v:g}", fontsize=7)
+        handles.append(Line2D([], [], color=VERMILLION, lw=2, label=f"{r.name} limit {r.limit_text()}"))
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    ax.set_title(f"{r.name}{' (safety)' if r.is_safety else ''}", fontsize=10)
+    return _finish(fig, ax, handles, legend)
+
+
+def probability_map_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None,
+                           ax=None, confidence=None, legend=True):
+    """Probability that a run meets every limit, over two factors.
+
+    Filled contours of the joint probability (viridis), a line at the confidence, the *uncertain*
+    class (``1 - confidence < P < confidence``) hatched ``//`` and the *untrusted* points (far from
+    every run, or a model too unsure against its limit) hatched ``xx``; plus the window, set point and
+    runs. The hatched regions are contour sets with ``gid="uncertain"`` and ``gid="untrusted"``.
+    """
+    grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
+    if grid.fmap is None:
+        raise InputError("study.toml: no response has a limit, so there is no probability to map; "
+                         "give a response a min or max")
+    fm = grid.fmap
+    conf = fm.confidence if confidence is None else float(confidence)
+    fig, ax = _axes(ax)
+    P = grid.field(fm.p_joint)
+    cf = ax.contourf(grid.xs, grid.ys, P, levels=np.linspace(0.0, 1.0, 11), cmap="viridis")
+    fig.colorbar(cf, ax=ax, label="P(all limits met)")
+    handles = []
+    cs = ax.contour(grid.xs, grid.ys, P, levels=[conf], colors="white", linewidths=2.0, zorder=4)
+    cs.set_gid("confidence")
+    handles.append(Line2D([], [], color="white", lw=2, label=f"P = {conf:g}",
+                          path_effects=[patheffects.withStroke(linewidth=3.5, foreground=BLACK)]))
+    for key, mask, hatch, text in (("uncertain", fm.klass == "uncertain", "////", "uncertain class"),
+                                   ("untrusted", fm.untrusted, "xx", "untrusted (far or unsure)")):
+        Z = grid.field(mask.astype(float))
+        if Z.any():
+            hs = ax.contourf(grid.xs, grid.ys, Z, levels=[0.5, 1.5], colors="none", hatches=[hatch],
+                             zorder=3)
+            hs.set_gid(key)
+            hs.set_edgecolor((1, 1, 1, 0.8) if key == "uncertain" else (0, 0, 0, 0.6))
+            hs.set_linewidth(0)
+        handles.append(Patch(facecolor="0.6", edgecolor=BLACK, hatch=hatch, label=text))
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    ax.set_title("P(all limits met)" + (" — process mean" if getattr(window, "mean_only", False)
+                                        else " — new run"), fontsize=10)
+    return _finish(fig, ax, handles, legend)
+
+
+def _finish(fig, ax, handles, legend):
+    ax.legend_handles_ = handles
+    if legend:
+        ax.legend(handles=handles, fontsize=6, loc="upper right", framealpha=0.85)
+    return fig
+
+
+def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None):
+    """One row of maps for a pair: every limited response (or every goal when none is limited) and the
+    joint probability of meeting all limits."""
+    grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
+    shown = spec.limited or spec.goals or list(spec.responses)
+    panels = len(shown) + (grid.fmap is not None)
+    ncols = min(panels, 2)
+    nrows = -(-panels // ncols)
+    width, height = 5.8 * ncols, 4.2 * nrows + 0.7
+    fig, axes = new_figure(width, height, ncols=ncols, nrows=nrows, layout=None)
+    fig.subplots_adjust(left=0.75 / width, right=1 - 0.1 / width, bottom=1.15 / height,
+                        top=1 - 0.3 / height, wspace=0.42, hspace=0.32)
+    flat = list(axes.ravel())
+    for ax, r in zip(flat, shown):
+        map_figure(spec, fit, window, grid.pair, r.name, runs, suggestions, grid, ax=ax, legend=False)
+    if grid.fmap is not None:
+        probability_map_figure(spec, fit, window, grid.pair, runs, suggestions, grid, ax=flat[len(shown)],
+                               legend=False)
+    for ax in flat[panels:]:
+        ax.set_axis_off()
+    seen = {}
+    for ax in flat[:panels]:
+        for h in ax.legend_handles_:
+            seen.setdefault(h.get_label(), h)
+    fig.legend(handles=list(seen.values()), loc="lower center", ncols=min(len(seen), 4), fontsize=8,
+               frameon=False)
+    return fig
+
+
+def map_pairs(spec, influence=None, most: int = 5) -> list[tuple]:
+    """Factor pairs to map: all pairs, or with more than ``most`` factors the pairs among the ``most``
+    factors of largest total influence (summed over responses)."""
+    order = list(range(spec.d))
+    if spec.d > most:
+        if influence is not None:
+            score = np.atleast_2d(influence.total).sum(axis=0)
+            order = sorted(np.argsort(-score)[:most].tolist())
+        else:
+            order = order[:most]
+    return [(a, b) for k, a in enumerate(order) for b in order[k + 1:]]
