@@ -32,7 +32,7 @@ def disc(X):
     return 1.0 / (1.0 + np.exp(-STEEP * (R ** 2 - ((X - CENTRE) ** 2).sum(axis=1))))
 
 
-def corners(lower, upper):
+def corners(lower, upper):  # of a 2-D box
     return np.array([[a, b] for a in (lower[0], upper[0]) for b in (lower[1], upper[1])])
 
 
@@ -67,10 +67,11 @@ def test_disc_window_from_a_real_gp_model():
     assert res.volume >= 0.8 * 2 * R ** 2
 
 
-def smooth_prob(seed):
-    """P = Phi(g), g = 2.5 minus three Gaussian dips at random places (a smooth field with holes)."""
+def smooth_prob(seed, d=2, dips=3):
+    """P = Phi(g), g = 2.5 minus Gaussian dips at random places (a smooth field with holes)."""
     rng = np.random.default_rng(seed)
-    centres, depth, width = rng.random((3, 2)), rng.uniform(1.5, 4.0, 3), rng.uniform(0.08, 0.25, 3)
+    centres, depth = rng.random((dips, d)), rng.uniform(1.5, 4.0, dips)
+    width = rng.uniform(0.08, 0.25, dips) if d == 2 else rng.uniform(0.1, 0.3, dips)
 
     def prob(X):
         d2 = ((X[:, None, :] - centres[None]) ** 2).sum(axis=2)
@@ -78,14 +79,14 @@ def smooth_prob(seed):
     return prob
 
 
-@pytest.mark.parametrize("seed", [0, 1, 2, 3, 4])
-def test_reported_minimum_is_never_above_the_grid_minimum(seed):
-    prob = smooth_prob(seed)
-    tol = np.array([0.02, 0.0]) if seed % 2 else None
-    res = find_window(prob, 2, 0.9, tolerance=tol, seed=seed)
+@pytest.mark.parametrize("seed, d", [(0, 2), (1, 2), (2, 2), (3, 2), (4, 2), (10, 3)])
+def test_reported_minimum_is_never_above_the_grid_minimum(seed, d):
+    prob = smooth_prob(seed, d, dips=3 if d == 2 else 4)
+    tol = np.r_[0.02, np.zeros(d - 1)] if seed % 2 else None
+    res = find_window(prob, d, 0.9, tolerance=tol, seed=seed)
     assert res.found
-    # brute force: the lowest probability on a 201 x 201 grid over the guard box
-    grid_min = prob(grid_in(res.guard_lower, res.guard_upper)).min()
+    # brute force: the lowest probability on a grid over the guard box (201^2 or 61^3 points)
+    grid_min = prob(grid_in(res.guard_lower, res.guard_upper, 201 if d == 2 else 61)).min()
     assert res.min_probability <= grid_min + 1e-9
     assert res.min_probability >= 0.9 and grid_min >= 0.9
     assert prob(res.worst_point[None])[0] == pytest.approx(res.min_probability)

@@ -17,13 +17,14 @@ Method
    factor move together, so the ranges stay symmetric about it.
 3. **Verification.** ``prob_fn`` at the guard box's corners, face centres, centre and a Sobol set in
    it; when all pass, an adversarial search for its lowest probability (L-BFGS-B [2]_ bounded to the
-   guard box, central differences in one vectorised call) from the lowest few. Points below the
-   confidence become blockers. A failing box shrinks about its centre (faces on the cube's edge stay)
-   until cubes of a margin around the failing points are outside, the margin doubling per failure;
-   once it passes, all faces and then each face alone are bisected back toward the failed box. The
-   shape step reruns from the verified box with the new blockers (cutting-plane refinement); the
-   largest verified box over the seeds is kept. ``min_probability`` is the lowest ``P`` of all
-   evaluations inside the final guard box.
+   guard box, central differences in one vectorised call) from the lowest few points seen in the box.
+   Points below the confidence become blockers. A failing box shrinks about its centre (faces on the
+   cube's edge stay) until cubes of a margin around the failing points are outside, the margin
+   doubling per failure; once it passes, all faces and then each face alone are bisected back toward
+   the failed box. The shape step reruns from the verified box with the new blockers (cutting-plane
+   refinement). Finally every verified box is rechecked against all later evaluations (settled again
+   if one fell below the confidence inside it) and the largest is kept; ``min_probability`` is the
+   lowest ``P`` of all evaluations inside its guard box.
 
 References
 ----------
@@ -254,13 +255,17 @@ class _Search:
         faces[self.d + np.arange(self.d), np.arange(self.d)] = hi
         pts = np.vstack([lo + self.corners * (hi - lo), faces, centre,
                          lo + self.engine.random(self.n_check) * (hi - lo)])
-        p = self.rec(pts)
-        if p.min() >= self.c:
-            starts = _distinct(pts[np.argsort(p)], self.n_local, 0.1 * np.max(hi - lo))
+        if self.rec(pts).min() >= self.c:
+            X_in, P_in = self.rec.inside(lo, hi)  # start from the lowest of everything seen in the box
+            starts = _distinct(X_in[np.argsort(P_in)], self.n_local, 0.1 * np.max(hi - lo))
             _local_search(self.rec, starts, lo, hi)
         X_new, P_new = self.rec.inside(lo, hi, since=start)
         self.add_blockers(X_new[P_new < self.c])
-        X_in, P_in = self.rec.inside(lo, hi)
+        return self.failing(lower, upper)
+
+    def failing(self, lower, upper):
+        """Every point evaluated so far in the box's guard box with ``P < confidence``."""
+        X_in, P_in = self.rec.inside(*self.guard(lower, upper))
         return X_in[P_in < self.c]
 
     def cut(self, lower, upper, bad, radius):
@@ -366,19 +371,29 @@ def _largest(search, seeds, max_rounds, n_reshape=2):
     the largest verified box. A box is skipped when its volume, times the shrink the first verified box
     needed, cannot beat the best so far."""
     boxes = [search.shape(*b) for b in (search.cube(np.asarray(x, dtype=float)) for x in seeds) if b]
-    best, best_volume, shrink = None, -1.0, 1.0
+    verified, best_volume, shrink = [], -1.0, 1.0
     for box in sorted(boxes, key=lambda b: -_volume(*b)):
         for attempt in range(n_reshape):
             volume = _volume(*box)
-            if best is not None and volume * (shrink if attempt == 0 else 1.0) <= best_volume:
+            if verified and volume * (shrink if attempt == 0 else 1.0) <= best_volume:
                 break
             passed = search.settle(*box, max_rounds)
-            if passed is not None and _volume(*passed) > best_volume:
-                if best is None and volume > 0:
-                    shrink = _volume(*passed) / volume
-                best, best_volume = passed, _volume(*passed)
+            if passed is not None:
+                shrink = _volume(*passed) / volume if not verified and volume > 0 else shrink
+                verified.append(passed)
+                best_volume = max(best_volume, _volume(*passed))
             box = search.shape(*(passed if passed is not None else box))
-    return best
+    # later evaluations may have found low points inside an earlier verified box: settle it again
+    valid = [b for b in (_still_valid(search, b, max_rounds) for b in verified) if b is not None]
+    return max(valid, key=lambda b: _volume(*b)) if valid else None
+
+
+def _still_valid(search, box, max_rounds, tries=3):
+    for _ in range(tries):
+        if box is None or not len(search.failing(*box)):
+            return box
+        box = search.settle(*box, max_rounds)
+    return box if box is not None and not len(search.failing(*box)) else None
 
 
 def _best(rec, C, P, d, k=4):
