@@ -128,7 +128,8 @@ def sobol_indices(fn, d, n=1024, seed=0, names=None, outputs=None, n_boot=200, c
     index", Comput. Phys. Commun. 181, 259-270, Table 2 (b), a refinement of the 2002 form that stays
     accurate when the mean is large; total-effect estimator of Jansen, M. J. W. (1999), "Analysis of
     variance designs for model output", Comput. Phys. Commun. 117, 35-43 (Saltelli et al. 2010, Table 2
-    (f)). Outputs are centred before estimation. Estimates may fall slightly below 0 or above 1 by
+    (f)). Outputs are centred before estimation. The bootstrap treats the Sobol' rows as independent
+    draws, so for these quasi-random points its intervals are on the wide (safe) side. Estimates may fall slightly below 0 or above 1 by
     sampling error; they are reported as computed.
     """
     d = int(d)
