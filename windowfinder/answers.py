@@ -225,6 +225,9 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     res = find_tradeoff(obj_fn, prob_fn, spec.d, confidence, len(names), seed=seed, pick=pick,
                         desirability=desir if pick == "desirability" else None, **search)
     X = spec.round_to_step(spec.to_natural(res.X)) if len(res.X) else np.empty((0, spec.d))
+    if len(X):  # rounding can merge neighbours: keep each setting once, in front order
+        _, first = np.unique(X, axis=0, return_index=True)
+        X = X[np.sort(first)]
     U = spec.to_coded(X) if len(X) else np.empty((0, spec.d))
     p = prob_fn(U) if len(U) else np.empty(0)
     keep = p >= confidence

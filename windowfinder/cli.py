@@ -204,6 +204,31 @@ def cmd_run(args):
     print(f"next: 'windowfinder window {args.study_dir}' and 'windowfinder report {args.study_dir}'")
 
 
+def cmd_report(args):
+    import pandas as pd
+
+    from .answers import build_tradeoff, build_window
+    from .report import write_report
+
+    study = _load(args)
+    spec = study.spec
+    fit = study.fit()
+    _warn(fit.warnings)
+    print("writing the report ...", file=sys.stderr)
+    win = build_window(spec, fit, args.confidence) if spec.limited else None
+    trade = build_tradeoff(spec, fit, args.confidence) if spec.goals else None
+    nxt = study.out / "next.csv"
+    suggestions = None
+    if nxt.exists():
+        planned = set(study.runs.planned()["run"])
+        suggestions = pd.read_csv(nxt, dtype={"run": str})
+        suggestions = suggestions[suggestions["run"].isin(planned)] if planned else None
+    path = write_report(study, fit=fit, window=win, tradeoff=trade, suggestions=suggestions)
+    if spec.has_safety and win is not None:
+        print("CAUTION: " + win.cautions[0])
+    print(f"report: {path}")
+
+
 def cmd_testplan(args):
     from .answers import build_window
     from .export import write_csv
@@ -293,6 +318,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--scheduler", help="address of an existing Dask scheduler, tcp://host:port")
     s.add_argument("--dask-local", type=int, metavar="N", help="start a local Dask cluster of N workers")
     s.add_argument("--run-timeout", type=float, metavar="S", help="seconds one command may run")
+    s = verb("report", cmd_report, "write one self-contained HTML report (out/report.html)")
+    s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s = verb("testplan", cmd_testplan, "plan verification runs inside the window")
     s.add_argument("--runs", type=int, help="number of runs (default: centre x3 + corners)")
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
@@ -302,7 +329,7 @@ def build_parser() -> argparse.ArgumentParser:
 
 
 #: Verbs the demo runs after fit, with their options.
-DEMO_VERBS: list = [["window"], ["tradeoff"], ["suggest", "--count", "4"], ["testplan"]]
+DEMO_VERBS: list = [["window"], ["tradeoff"], ["suggest", "--count", "4"], ["testplan"], ["report"]]
 
 
 def main(argv=None) -> int:
