@@ -339,7 +339,8 @@ class Feasibility:
         unsure_txt = blank
         for k, name in enumerate(self.names_):
             unsure_txt = _append(unsure_txt, unsure[:, k], name, ", ")
-        reasons = _append(np.where(far, "far from runs", blank), unsure_txt != "", "unsure: " + unsure_txt, "; ")
+        far_txt = np.where(far, "far from runs", blank)
+        reasons = _append(far_txt, unsure_txt != "", "unsure: " + unsure_txt, "; ")
         return FeasibilityMap(
             X=X, names=list(self.names_), p_each=p_each, p_works=p_works, p_joint=joint,
             klass=klass.astype(str), untrusted=far | unsure.any(axis=1), reasons=reasons.astype(str),
