@@ -371,6 +371,59 @@ class Campaign:
         return entry
 
 
+class ModelProgress:
+    """Default proposer and progress figures sharing one model fit per batch.
+
+    ``window volume`` is the coded volume of the window at the study's confidence, and ``front
+    hypervolume`` the hypervolume of the measured goal values of the runs that met every limit
+    (minimisation form, reference point fixed at the first batch: the nadir of the measured values plus
+    10 % of their range). Both are "as of the latest fit", i.e. one batch behind the newest results.
+    """
+
+    def __init__(self):
+        self.fit_ = None
+        self.ref_ = None
+
+    def propose(self, study: Study, count: int, aim: str) -> pd.DataFrame:
+        self.fit_ = study.fit()
+        return study.suggest(count, aim=aim, fit=self.fit_).frame
+
+    def metrics(self) -> dict:
+        return {"window volume": self.window_volume, "front hypervolume": self.front_hypervolume}
+
+    def window_volume(self, study: Study):
+        spec = study.spec
+        if self.fit_ is None or not spec.limited:
+            return None
+        from .answers import feasibility_of
+        from .window import find_window
+
+        res = find_window(feasibility_of(spec, self.fit_).joint, spec.d, spec.confidence,
+                          tolerance=spec.tolerances_coded, seed=spec.seed)
+        return float(res.volume) if res.found else 0.0
+
+    def front_hypervolume(self, study: Study):
+        from .hypervolume import hypervolume
+
+        spec = study.spec
+        if not spec.goals:
+            return None
+        done = study.runs.done()
+        Y = np.column_stack([-done[r.name] if r.goal == "maximize" else done[r.name] if r.goal == "minimize"
+                             else (done[r.name] - r.target).abs() for r in spec.goals]).astype(float)
+        met = np.all([r.margin(done[r.name].to_numpy(float)) >= 0 for r in spec.limited], axis=0) \
+            if spec.limited else np.ones(len(done), bool)
+        ok = np.isfinite(Y).all(axis=1)
+        if self.ref_ is None:
+            if ok.sum() < 2:
+                return None
+            lo, hi = Y[ok].min(axis=0), Y[ok].max(axis=0)
+            self.ref_ = hi + 0.1 * np.where(hi > lo, hi - lo, 1.0)
+        front = Y[ok & met]
+        front = front[(front < self.ref_).all(axis=1)]
+        return float(hypervolume(front, self.ref_)) if len(front) else 0.0
+
+
 def _proposals(study: Study, frame, count: int, aim: str) -> pd.DataFrame:
     """Proposer output as planned rows: factors rounded to step and clipped to bounds, at most ``count``."""
     spec = study.spec
@@ -438,11 +491,15 @@ def run_campaign(study_dir, *, command: str | None = None, function=None, budget
             raise InputError("--run-timeout applies to --command only; a Python function cannot be "
                              "stopped safely (make it time out itself, or wrap it as a command)")
         evaluator = FunctionEvaluator(function, spec.response_names)
+    if propose is None and metrics is None:
+        tracker = ModelProgress()
+        propose, metrics = tracker.propose, tracker.metrics()
     engine = make_engine(evaluator, workers=workers, scheduler=scheduler, dask_local=dask_local)
     campaign = Campaign(evaluator, budget, initial=initial, batch=batch, aim=aim, propose=propose,
                         engine=engine, metrics=metrics, progress=progress)
     return campaign.run(study_dir)
 
 
-__all__ = ["AIMS", "Campaign", "CampaignResult", "CampaignStopped", "RunLedger", "admissible",
+__all__ = ["AIMS", "Campaign", "CampaignResult", "CampaignStopped", "ModelProgress", "RunLedger",
+           "admissible",
            "default_initial", "make_engine", "run_campaign", "run_seed", "suggest_runs"]
