@@ -24,9 +24,12 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .spec import StudySpec
+from .spec import MAX_MAGNITUDE, StudySpec
 
 STATUSES = ("done", "planned", "failed")
+# A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a
+# wider range (common practice, no source).
+FAR_OUTSIDE = 10.0
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
@@ -102,12 +105,17 @@ def empty_table(spec: StudySpec) -> pd.DataFrame:
 
 def _read_text(path: Path) -> str:
     data = path.read_bytes()
+    if data.startswith((b"\xff\xfe", b"\xfe\xff")):
+        raise InputError(f"{path.name}: saved as UTF-16 text; save the table as CSV UTF-8")
     if b"\x00" in data:
-        raise InputError(f"{path.name}: binary file, not a CSV table; export the runs as CSV (UTF-8)")
+        raise InputError(f"{path.name}: binary file (or UTF-16 text), not a CSV table; export the runs "
+                         "as CSV UTF-8")
     try:
         return data.decode("utf-8-sig")
-    except UnicodeDecodeError:
-        raise InputError(f"{path.name}: not UTF-8 text; save the table as CSV UTF-8") from None
+    except UnicodeDecodeError as e:
+        line = data[:e.start].count(b"\n") + 1
+        raise InputError(f"{path.name} line {line}: not UTF-8 text (byte 0x{data[e.start]:02x}); save the "
+                         "table as CSV UTF-8") from None
 
 
 def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
@@ -129,18 +137,23 @@ def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
     text = _read_text(path)
     if not text.strip():
         raise InputError(f"{path.name}: empty file; it needs a header line: run, factor and response columns")
+    reader = csv.reader(io.StringIO(text, newline=""))  # the csv module handles \n, \r\n and \r
+    lines = []
     try:
-        reader = csv.reader(io.StringIO(text))
-        lines = []
         for rec in reader:
             lines.append((reader.line_num, rec))
     except csv.Error as e:
-        raise InputError(f"{path.name}: malformed CSV ({e}); check quotes") from None
+        raise InputError(f"{path.name} line {reader.line_num}: malformed CSV ({e}); check for an "
+                         "unclosed quote") from None
     lines = [(n, r) for n, r in lines if any(c.strip() for c in r)]
+    if not lines:
+        raise InputError(f"{path.name}: no header line, only empty cells; it needs run, factor and "
+                         "response columns")
     header = [c.strip() for c in lines[0][1]]
-    if len(header) == 1 and ";" in header[0]:
-        raise InputError(f"{path.name}: the columns are separated by ';'; save the file comma-separated "
-                         "(with '.' as decimal point)")
+    for sep, word in ((";", "';'"), ("\t", "tabs")):
+        if sum(c.count(sep) for c in header) >= max(1, len(header) - 1):
+            raise InputError(f"{path.name}: the columns are separated by {word}; save the file "
+                             "comma-separated (with '.' as decimal point)")
     return header, [r for _, r in lines[1:]], [n for n, _ in lines[1:]]
 
 
@@ -158,6 +171,9 @@ def _number(cell: str, where: str, column: str, allow_blank: bool) -> float:
     if not math.isfinite(v):
         raise InputError(f"{where}: '{column}' = '{s}' is not finite; enter a measured value or leave "
                          "it blank")
+    if abs(v) > MAX_MAGNITUDE:
+        raise InputError(f"{where}: '{column}' = {v:g} is out of range (magnitude above "
+                         f"{MAX_MAGNITUDE:g}); check the cell or change units")
     return v
 
 
@@ -168,6 +184,9 @@ def read_runs(path, spec: StudySpec) -> RunTable:
         return RunTable(empty_table(spec), spec, path)
     header, rows, line_nos = _raw_rows(path)
     name = path.name
+    if "" in header:
+        raise InputError(f"{name}: column {header.index('') + 1} has no name; name it or remove the "
+                         "stray comma in the header line")
     if len(set(header)) != len(header):
         dup = next(c for c in header if header.count(c) > 1)
         raise InputError(f"{name}: column '{dup}' appears twice; keep one")
@@ -182,7 +201,7 @@ def read_runs(path, spec: StudySpec) -> RunTable:
             raise InputError(f"{name}: missing column '{c}'; the table needs run, "
                              + ", ".join(spec.factor_names) + " and response columns")
     col = {c: i for i, c in enumerate(header)}
-    records, seen, warnings = [], {}, []
+    records, seen, warnings, lines_of = [], {}, [], []
     for cells, line in zip(rows, line_nos):
         cells = cells + [""] * (len(header) - len(cells))
         if len(cells) > len(header):
@@ -202,11 +221,16 @@ def read_runs(path, spec: StudySpec) -> RunTable:
             raise InputError(f"{where}: status '{status}' unknown; use done, planned or failed")
         rec = {"run": run, "status": status,
                "note": cells[col["note"]].strip() if "note" in col else ""}
-        for f in spec.factor_names:
-            rec[f] = _number(cells[col[f]], where, f, allow_blank=False)
+        for f in spec.factors:
+            rec[f.name] = v = _number(cells[col[f.name]], where, f.name, allow_blank=False)
+            if not -FAR_OUTSIDE <= f.to_coded(v) <= 1 + FAR_OUTSIDE:
+                raise InputError(f"{where}: '{f.name}' = {v:g} lies far outside the study range "
+                                 f"{f.low:g} .. {f.high:g} (more than {FAR_OUTSIDE:g} times its width); "
+                                 "check the cell or widen low/high in study.toml")
         for r in spec.response_names:
             rec[r] = _number(cells[col[r]], where, r, allow_blank=True) if r in col else math.nan
         records.append(rec)
+        lines_of.append(line)
     frame = pd.DataFrame.from_records(records, columns=known)
     if frame.empty:
         frame = empty_table(spec)
@@ -215,6 +239,7 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     if out.any():
         ids = ", ".join(frame.loc[out, "run"].astype(str).tolist()[:10])
         warnings.append(f"{name}: runs outside the study bounds (kept, treated as extrapolation): {ids}")
+    warnings += _spread_warnings(table, name)
     for r in spec.responses:
         if r.transform != "none":
             done = frame[frame["status"] == "done"][r.name].dropna()
@@ -222,10 +247,55 @@ def read_runs(path, spec: StudySpec) -> RunTable:
             strict = done[(done <= lo) | (done >= hi)] if r.transform == "logit" else done[done <= lo]
             if len(strict):
                 i = strict.index[0]
-                raise InputError(f"{name} (run {frame.loc[i, 'run']}): '{r.name}' = {strict.iloc[0]:g} "
+                raise InputError(f"{name} line {lines_of[i]} (run {frame.loc[i, 'run']}): '{r.name}' = "
+                                 f"{strict.iloc[0]:g} "
                                  f"is not allowed by transform = '{r.transform}'; check the value or "
                                  "the bounds in study.toml")
     return table
+
+
+VIF_MAX = 10.0  # Montgomery, Peck & Vining (2012), Introduction to Linear Regression Analysis, §9.4.2
+
+
+def variance_inflation(U: np.ndarray) -> np.ndarray:
+    """Variance inflation factor of each column: ``1 / (1 - R_j^2)``, ``R_j^2`` from regressing column
+    ``j`` on the others with an intercept (Montgomery, Peck & Vining 2012, §9.4.2); inf when exact."""
+    n, d = U.shape
+    vif = np.ones(d)
+    for j in range(d):
+        y = U[:, j] - U[:, j].mean()
+        A = np.column_stack([np.ones(n), np.delete(U, j, axis=1)])
+        resid = y - A @ np.linalg.lstsq(A, y, rcond=None)[0]
+        ss_res, ss_tot = float(resid @ resid), float(y @ y)
+        vif[j] = np.inf if ss_res <= 1e-12 * ss_tot else ss_tot / ss_res
+    return vif
+
+
+def _spread_warnings(table: RunTable, name: str) -> list[str]:
+    """Factors the completed runs cannot tell apart: one level only, or strongly correlated."""
+    spec = table.spec
+    U = table.X_coded(table.completed())
+    n = len(U)
+    if n < 2:
+        return []
+    out, varied = [], []
+    for j, f in enumerate(spec.factors):
+        if np.ptp(U[:, j]) <= 1e-12:
+            out.append(f"{name}: factor '{f.name}' has one level ({table.X(table.completed())[0, j]:g}) in "
+                       f"all {n} completed runs; the models cannot learn its effect, so any answer along "
+                       f"'{f.name}' is a guess; vary it or remove it from the study")
+        else:
+            varied.append(j)
+    if len(varied) >= 2 and n >= len(varied) + 2:
+        vif = variance_inflation(U[:, varied])
+        bad = [(spec.factors[j].name, v) for j, v in zip(varied, vif) if v > VIF_MAX]
+        if bad:
+            worst = max(v for _, v in bad)
+            size = "exactly collinear" if np.isinf(worst) else f"VIF = {worst:.4g}"
+            out.append(f"{name}: factors " + ", ".join(f"'{b}'" for b, _ in bad)
+                       + f" move together in the completed runs ({size}); the models cannot separate "
+                       "their effects; add runs that vary them independently")
+    return out
 
 
 def format_rows(frame: pd.DataFrame, header: list[str]) -> str:

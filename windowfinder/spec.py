@@ -27,6 +27,17 @@ STUDY_KEYS = ("name", "confidence", "seed", "description")
 FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
 RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds")
 TOP_KEYS = ("study", "factor", "response")
+# Largest magnitude accepted for a number in the study file: far beyond any physical quantity in sensible
+# units, and small enough that squares and differences of such numbers stay finite in float64
+# (common practice, no source).
+MAX_MAGNITUDE = 1e100
+MAX_SEED = 2**32 - 1  # numpy RandomState and scikit-learn accept seeds 0 .. 2**32 - 1
+
+
+def _short(v, n: int = 60) -> str:
+    """``repr`` of a value, cut to ``n`` characters for a one-line message."""
+    r = repr(v)
+    return r if len(r) <= n else r[: n - 3] + "..."
 
 
 def _nearest(key: str, valid) -> str:
@@ -67,8 +78,9 @@ class Factor:
         hi = math.floor(self.high / self.step + 1e-9) * self.step
         if lo > hi:  # no multiple of step inside the bounds: keep the bounds
             return np.clip(x, self.low, self.high)
-        # round away float noise of the multiplication
-        return np.round(np.clip(r, lo, hi), 10)
+        # round away float noise of the multiplication, at least 10 decimals finer than the step
+        decimals = max(10, 10 - math.floor(math.log10(self.step)))
+        return np.round(np.clip(r, lo, hi), decimals)
 
 
 @dataclass(frozen=True)
@@ -201,10 +213,15 @@ class StudySpec:
         path = Path(path)
         if not path.exists():
             raise InputError(f"{path}: study file not found; create one with 'windowfinder new DIR'")
+        data = path.read_bytes()
+        if data.startswith((b"\xff\xfe", b"\xfe\xff")):
+            raise InputError(f"{path}: saved as UTF-16 text; save the study file as UTF-8")
         try:
-            raw = path.read_bytes().decode("utf-8-sig")
-        except UnicodeDecodeError:
-            raise InputError(f"{path}: not UTF-8 text; save the study file as UTF-8") from None
+            raw = data.decode("utf-8-sig")
+        except UnicodeDecodeError as e:
+            line = data[:e.start].count(b"\n") + 1
+            raise InputError(f"{path} line {line}: not UTF-8 text (byte 0x{data[e.start]:02x}); save the "
+                             "study file as UTF-8") from None
         try:
             data = tomllib.loads(raw)
         except tomllib.TOMLDecodeError as e:
@@ -242,16 +259,22 @@ class _Parser:
                 self.fail(where, f"missing key '{key}'; add {key} = <number>")
             return default
         v = table[key]
-        if isinstance(v, bool) or not isinstance(v, (int, float)) or not math.isfinite(v):
-            self.fail(where, f"'{key}' must be a finite number, got {v!r}")
+        ok = isinstance(v, (int, float)) and not isinstance(v, bool)
+        if ok and isinstance(v, int):
+            ok = abs(v) <= MAX_MAGNITUDE
+        if not ok or not math.isfinite(v):
+            self.fail(where, f"'{key}' must be a finite number, got {_short(v)}")
+        if abs(v) > MAX_MAGNITUDE:
+            self.fail(where, f"'{key}' = {v:g} is too large; use units in which it lies within "
+                      f"+-{MAX_MAGNITUDE:g}")
         return float(v)
 
     def text(self, table, key, where, default="", choices=None):
         v = table.get(key, default)
         if not isinstance(v, str):
-            self.fail(where, f"'{key}' must be text in quotes, got {v!r}")
+            self.fail(where, f"'{key}' must be text in quotes, got {_short(v)}")
         if choices is not None and v not in choices:
-            self.fail(where, f"'{key}' = '{v}' is not one of {', '.join(choices)}; "
+            self.fail(where, f"'{key}' = {_short(v)} is not one of {', '.join(choices)}; "
                       + _nearest(v, choices).replace("valid keys", "choose from"))
         return v
 
@@ -276,8 +299,8 @@ class _Parser:
         if not 0.0 < conf < 1.0:
             self.fail("[study]", f"confidence = {conf:g} must lie strictly between 0 and 1, e.g. 0.95")
         seed = st.get("seed", 0)
-        if isinstance(seed, bool) or not isinstance(seed, int) or seed < 0:
-            self.fail("[study]", f"seed = {seed!r} must be a whole number >= 0")
+        if isinstance(seed, bool) or not isinstance(seed, int) or not 0 <= seed <= MAX_SEED:
+            self.fail("[study]", f"seed = {_short(seed)} must be a whole number from 0 to {MAX_SEED}")
         factors = data.get("factor", [])
         responses = data.get("response", [])
         if not isinstance(factors, list) or not factors:
@@ -298,6 +321,9 @@ class _Parser:
         high = self.number(t, "high", where, required=True)
         if low >= high:
             self.fail(where, f"low = {low:g} must be below high = {high:g}")
+        if high - low <= 1e-9 * max(abs(low), abs(high)):
+            self.fail(where, f"low = {low:g} and high = {high:g} are too close to tell apart in floating "
+                      "point; widen the range or change units")
         step = self.number(t, "step", where)
         if step is not None and not 0 < step <= high - low:
             self.fail(where, f"step = {step:g} must be > 0 and no larger than high - low")
@@ -331,7 +357,7 @@ class _Parser:
                   and all(isinstance(b, (int, float)) and not isinstance(b, bool)
                           and math.isfinite(b) for b in bounds) and bounds[0] < bounds[1])
             if not ok:
-                self.fail(where, f"bounds = {bounds!r} must be [lower, upper] with lower < upper")
+                self.fail(where, f"bounds = {_short(bounds)} must be [lower, upper] with lower < upper")
             bounds = (float(bounds[0]), float(bounds[1]))
         if transform == "logit" and bounds is None:
             self.fail(where, "transform = 'logit' needs the physical bounds, e.g. bounds = [0, 100]")
