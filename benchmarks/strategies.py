@@ -1,0 +1,200 @@
+"""The strategies the sample-efficiency benchmark compares, and how each one's answer is judged.
+
+Every strategy ends in data (coded settings, measured responses, works flags) at each budget; the same
+judge turns data into a claimed window and trade-off front with windowfinder's public pieces
+(:meth:`Surrogates.fit_arrays`, :class:`Feasibility`, :func:`find_window`, :func:`find_tradeoff`) and
+measures them against the noise-free truth (:mod:`benchmarks.problems`). Only the data (and, for the
+central composite design, the model) differ between strategies.
+
+One-shot designs, built anew at every budget:
+
+* ``ofat``: one factor at a time through the centre, the most levels that fit, the rest centre repeats;
+* ``ccd``: face-centred central composite design with one centre run, repeated whole as far as the
+  budget allows, the remainder a partial repeat (centre, axial, factorial runs in that order), judged
+  with the full second-order least-squares model (Montgomery 2013, ch. 11);
+* ``space-filling``: windowfinder's Latin hypercube (``make_design("space-filling")``).
+
+Sequential strategies share one initial Latin hypercube and the same run-to-run noise draws per seed,
+then add runs in batches until each budget on the grid is reached exactly (the snapshots are nested):
+
+* ``random``: uniform random settings;
+* ``window``, ``tradeoff``, ``balanced``: :func:`windowfinder.nextruns.suggest` with that aim.
+"""
+
+from __future__ import annotations
+
+import zlib
+
+import numpy as np
+
+from windowfinder.answers import objectives_of
+from windowfinder.designs import central_composite, make_design, one_factor_at_a_time
+from windowfinder.errors import InputError
+from windowfinder.feasibility import Feasibility
+from windowfinder.hypervolume import hypervolume
+from windowfinder.nextruns import suggest
+from windowfinder.surrogate import Surrogates
+from windowfinder.tradeoff import find_tradeoff, normalised_igd
+from windowfinder.window import find_window
+
+from .problems import Problem, box_precision, non_dominated, truth_problem
+
+CONFIDENCE = 0.95
+N_RESTARTS = 2               # GP optimizer restarts (windowfinder's default is 5), for speed
+TRADEOFF_SEARCH = {"pop_size": 40, "n_gen": 40}   # windowfinder's default is 100 x 150, for speed
+BATCH = 2
+ONE_SHOT = ("ofat", "ccd", "space-filling")
+SEQUENTIAL = ("random", "window", "tradeoff", "balanced")
+LABELS = {"ofat": "one factor at a time + GP", "ccd": "central composite + quadratic",
+          "space-filling": "space-filling one-shot + GP", "random": "random sequential + GP",
+          "window": "windowfinder, aim window", "tradeoff": "windowfinder, aim tradeoff",
+          "balanced": "windowfinder, aim balanced"}
+
+
+def run_seeds(seed: int, tag: str, n: int) -> np.ndarray:
+    """``n`` reproducible run seeds for one benchmark seed and a tag naming the design."""
+    return np.random.SeedSequence([seed, zlib.crc32(tag.encode())]).generate_state(n)
+
+
+def initial_size(d: int) -> int:
+    """Initial runs of the sequential strategies: 6 for two factors, 8 for three (``2 d + 2``)."""
+    return 2 * d + 2
+
+
+def one_shot_design(kind: str, d: int, n: int, seed: int) -> np.ndarray:
+    """A one-shot design of exactly ``n`` runs (coded)."""
+    if kind == "space-filling":
+        return make_design("space-filling", d, runs=n, seed=seed)
+    if kind == "ofat":
+        levels = 1 + 2 * ((n - 1) // d // 2)  # odd, 1 + d (levels - 1) <= n
+        X = one_factor_at_a_time(d, max(levels, 3))
+    elif kind == "ccd":
+        base = central_composite(d, "face", centre=1)
+        order = np.r_[len(base) - 1, np.arange(2**d, len(base) - 1), np.arange(2**d)]
+        X = np.vstack([base] * (n // len(base)) + [base[order][: n % len(base)]])
+    else:
+        raise ValueError(kind)
+    return np.vstack([X, np.full((n - len(X), d), 0.5)])[:n]
+
+
+def fit(problem: Problem, X, Y, works, kind="gp", seed=0):
+    """Models of every response (failure model when a run failed); None when they cannot be fitted."""
+    try:
+        return Surrogates.fit_arrays(X, Y, problem.transforms, works=works if (~works).any() else None,
+                                     kind=kind, n_restarts=N_RESTARTS, seed=seed)
+    except InputError:
+        return None
+
+
+def judge(problem: Problem, ref, sur, X, seed: int) -> dict:
+    """Claimed 95 % window and trade-off front of fitted models, measured against the truth.
+
+    Returns ``found``, ``precision`` (share of the stated window truly feasible), ``recall`` (stated
+    window volume / largest truly feasible window), ``hv_ratio`` (hypervolume of the truly feasible
+    points of the claimed front / that of the true front) and ``igd`` (normalised IGD of those points).
+    """
+    out = {"found": False, "precision": np.nan, "recall": 0.0, "hv_ratio": 0.0, "igd": np.inf}
+    if sur is None:
+        return out
+    feas = Feasibility(problem.limits, sur, X)
+    w = find_window(feas.joint, problem.d, CONFIDENCE, tolerance=problem.spec.tolerances_coded, seed=seed)
+    if w.found:
+        out.update(found=True, recall=float(w.volume) / ref.box_volume,
+                   precision=box_precision(problem.feasible, w.lower, w.upper, seed=seed))
+    out["hv_ratio"], out["igd"] = judge_front(problem, ref, sur, feas, seed, TRADEOFF_SEARCH)
+    return out
+
+
+def judge_front(problem: Problem, ref, sur, feas, seed: int, search=None) -> tuple[float, float]:
+    """Hypervolume ratio and normalised IGD of the truly feasible points of the claimed 95 % front
+    (``search``: population and generations of :func:`find_tradeoff`, None for its defaults)."""
+    obj, _ = objectives_of(problem.spec, sur)
+    front = find_tradeoff(obj, feas.joint, problem.d, CONFIDENCE, len(problem.goals), seed=seed,
+                          **(search or {}))
+    if not front.found:
+        return 0.0, np.inf
+    ok = problem.feasible(front.X)
+    F = problem.objectives(problem.truth(front.X[ok]))
+    if not len(F):
+        return 0.0, np.inf
+    return hypervolume(F, ref.ref_point) / ref.hv, normalised_igd(F, ref.front)
+
+
+def one_shot(problem: Problem, ref, kind: str, budgets, seed: int) -> list[dict]:
+    """Judge a fresh one-shot design at every budget."""
+    rows = []
+    for n in budgets:
+        X = one_shot_design(kind, problem.d, n, seed)
+        Y, works = problem.run(X, run_seeds(seed, f"{kind}-{n}", n))
+        sur = fit(problem, X, Y, works, kind="quadratic" if kind == "ccd" else "gp", seed=seed)
+        rows.append({"budget": n, **judge(problem, ref, sur, X, seed)})
+    return rows
+
+
+def _propose(problem: Problem, aim: str, sur, X, q: int, seed: int) -> np.ndarray:
+    rng = np.random.default_rng([seed, len(X)])
+    if aim == "random" or sur is None:
+        return rng.random((q, problem.d))
+    return suggest(sur, problem.limits, problem.goals, X, q, aim=aim, confidence=CONFIDENCE,
+                   seed=seed + len(X)).X
+
+
+def sequential(problem: Problem, ref, aim: str, budgets, seed: int) -> list[dict]:
+    """Initial Latin hypercube, then batches of ``BATCH`` runs by ``aim``; judged at every budget."""
+    budgets = sorted(budgets)
+    seeds = run_seeds(seed, "sequential", budgets[-1])
+    X = make_design("space-filling", problem.d, runs=initial_size(problem.d), seed=seed)
+    Y, works = problem.run(X, seeds[: len(X)])
+    rows = []
+    while True:
+        n = len(X)
+        need_fit = aim != "random" or n in budgets
+        sur = fit(problem, X, Y, works, seed=seed) if need_fit else None
+        if n in budgets:
+            rows.append({"budget": n, **judge(problem, ref, sur, X, seed)})
+        if n >= budgets[-1]:
+            if aim == "tradeoff" and sur is not None:  # the front a user gets: default search settings
+                feas = Feasibility(problem.limits, sur, X)
+                rows[-1]["igd_default"] = judge_front(problem, ref, sur, feas, seed)[1]
+            return rows
+        q = min(BATCH, min(b for b in budgets if b > n) - n)
+        X_new = _propose(problem, aim, sur, X, q, seed)
+        Y_new, w_new = problem.run(X_new, seeds[n:n + q])
+        X = np.vstack([X, X_new])
+        Y = {r: np.concatenate([Y[r], Y_new[r]]) for r in Y}
+        works = np.concatenate([works, w_new])
+
+
+def run_strategy(problem: Problem, ref, strategy: str, budgets, seed: int) -> list[dict]:
+    if strategy in ONE_SHOT:
+        return one_shot(problem, ref, strategy, budgets, seed)
+    return sequential(problem, ref, strategy, budgets, seed)
+
+
+def nsga_evaluations(problem: Problem, ref, targets, seed: int, pop_size: int = 40,
+                     max_evals: int = 20000) -> list[float]:
+    """Evaluations NSGA-II on the noise-free truth needs until the normalised IGD of its feasible,
+    non-dominated archive is at or below each target (``inf`` when not within ``max_evals``).
+
+    pymoo's NSGA-II with its default operators (SBX crossover, polynomial mutation; Deb et al. 2002).
+    """
+    from pymoo.algorithms.moo.nsga2 import NSGA2
+    from pymoo.optimize import minimize
+
+    record: list = []
+    minimize(truth_problem(problem, record), NSGA2(pop_size=pop_size), ("n_eval", max_evals), seed=seed,
+             verbose=False)
+    reached = [np.inf] * len(targets)
+    archive = np.empty((0, len(problem.goals)))
+    evals = 0
+    for F, ok in record:
+        evals += len(F)
+        if ok.any():
+            archive = non_dominated(np.vstack([archive, F[ok]]))
+            value = normalised_igd(archive, ref.front)
+            for i, t in enumerate(targets):
+                if reached[i] == np.inf and value <= t:
+                    reached[i] = evals
+        if all(r < np.inf for r in reached):
+            break
+    return reached
