@@ -162,19 +162,40 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
         return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
                              message=res.message, **common)
-    lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
-    glo_n, ghi_n = spec.to_natural(res.guard_lower)[0], spec.to_natural(res.guard_upper)[0]
+    lo_n, hi_n = _inward(spec, spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0])
+    tol = np.array([f.tolerance for f in spec.factors])
+    glo_n = np.maximum(lo_n - tol, spec.lows)
+    ghi_n = np.minimum(hi_n + tol, spec.lows + spec.spans)
     factors = [{"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
                 "guard_low": float(c), "guard_high": float(e), "tolerance": f.tolerance}
                for f, a, b, c, e in zip(spec.factors, lo_n, hi_n, glo_n, ghi_n)]
-    glo, ghi = np.asarray(res.guard_lower), np.asarray(res.guard_upper)
+    glo, ghi = spec.to_coded(glo_n)[0], spec.to_coded(ghi_n)[0]
     inside = glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512) * (ghi - glo)
     share = float(feas.evaluate(inside, max(confidence, 0.5 + 1e-9)).untrusted.mean())
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
                          cautions=cautions(spec, fit, share, mean_only), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
-                         volume_share=float(res.volume), **common)
+                         volume_share=float(np.prod((hi_n - lo_n) / spec.spans)), **common)
+
+
+def _inward(spec: StudySpec, lo, hi):
+    """Window ranges rounded inward to each factor's step, so every corner can be set.
+
+    The rounded box lies inside the verified one, so its lowest probability is at least the verified
+    minimum. A range narrower than one step collapses to the step value nearest its middle.
+    """
+    lo, hi = np.array(lo, dtype=float), np.array(hi, dtype=float)
+    for j, f in enumerate(spec.factors):
+        if not f.step:
+            continue
+        a = np.round(np.ceil(lo[j] / f.step - 1e-9) * f.step, 10)
+        b = np.round(np.floor(hi[j] / f.step + 1e-9) * f.step, 10)
+        if a <= b:
+            lo[j], hi[j] = a, b
+        else:
+            lo[j] = hi[j] = float(np.clip(f.round((lo[j] + hi[j]) / 2), lo[j], hi[j]))
+    return lo, hi
 
 
 @dataclass
