@@ -21,6 +21,8 @@ from sklearn.gaussian_process import GaussianProcessClassifier, GaussianProcessR
 from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponentiation, Matern, WhiteKernel
 
 from windowfinder.errors import InputError
+from windowfinder.likelihood import SUPPORTED_NU, FastOptimizer, SignalKernel
+from windowfinder.sparse import FITC, kcenter
 
 # Hyperparameter bounds for 10-50 runs in the unit cube with standardised outputs
 # (common practice, no source):
@@ -34,6 +36,14 @@ LENGTH_SCALE_BOUNDS = (0.05, 20.0)
 NOISE_BOUNDS = (1e-6, 1.0)
 TREND_BOUNDS = (1e-4, 1e2)  # prior variance of the quadratic trend, standardised units
 JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (scikit-learn default)
+# Many runs (windowfinder.sparse). Above SUBSET_RUNS the optimizer restarts run on that many
+# space-filling runs; above MAX_EXACT_RUNS the model is the FITC approximation with them as inducing
+# points. At 1000 runs one exact likelihood evaluation with its gradient takes about 0.2 s on one core
+# and a fit with restarts about a minute; 500 inducing points keep the approximation's held-out error
+# within a few per cent of the exact GP's on smooth responses in up to 10 factors (tests/test_scale.py,
+# benchmarks/scale.py).
+MAX_EXACT_RUNS = 1000
+SUBSET_RUNS = 500
 
 TRANSFORM_KINDS = ("none", "log", "logit")
 
@@ -138,7 +148,15 @@ class _ResponseModel:
     """Shared prediction, interval and conditioning logic of the per-response models."""
 
     kind = ""
-    _CHUNK = 20000  # rows per block in predict, to bound memory on large grids
+    _CHUNK = 20000  # most rows per block in predict
+    _CHUNK_ELEMENTS = 2_000_000  # rows x basis size per block (16 MB per array), to bound memory
+
+    def _basis_size(self):
+        """Columns of the per-block cross matrix (training runs, inducing points or model terms)."""
+        return 1
+
+    def _chunk_rows(self):
+        return int(max(1, min(self._CHUNK, self._CHUNK_ELEMENTS // max(self._basis_size(), 1))))
 
     def interval_quantile(self, level, loo=False):
         """Two-sided quantile multiplier for a central interval of probability ``level``."""
@@ -147,8 +165,8 @@ class _ResponseModel:
     def predict(self, X, return_std=True, noise=False):
         """Latent mean and, with ``return_std``, latent sd (model; plus noise sd when ``noise=True``)."""
         X = _check_xy(X, d=self.X_train_.shape[1])
-        parts = [self._moments(X[i:i + self._CHUNK], return_std, noise)
-                 for i in range(0, max(X.shape[0], 1), self._CHUNK)]
+        rows = self._chunk_rows()
+        parts = [self._moments(X[i:i + rows], return_std, noise) for i in range(0, max(X.shape[0], 1), rows)]
         mean = np.concatenate([m for m, _ in parts])
         return (mean, np.concatenate([v for _, v in parts])) if return_std else mean
 
@@ -188,7 +206,15 @@ class GPModel(_ResponseModel):
     Kernel ``C * Matern(nu, one length scale per factor) + White`` on standardised latent outputs,
     hyperparameters by maximum marginal likelihood with ``n_restarts`` random restarts
     (Rasmussen & Williams 2006, *Gaussian Processes for Machine Learning*, ch. 2 and 5).
-    Replicated runs are kept: they inform the noise level.
+    Replicated runs are kept: they inform the noise level. The likelihood and its gradient are
+    evaluated by :class:`windowfinder.likelihood.FastOptimizer` (same values as scikit-learn's, several
+    times faster).
+
+    Many runs (see :mod:`windowfinder.sparse`): with more than ``n_subset`` runs the restarts run on
+    ``n_subset`` runs chosen by farthest-point selection and one final optimisation on all runs starts
+    from the best of them; with more than ``max_exact`` runs the hyperparameters come from that subset
+    alone and predictions from all runs by the FITC approximation with the subset as inducing inputs
+    (``note_`` and ``warning_`` say so).
 
     Parameters
     ----------
@@ -200,10 +226,17 @@ class GPModel(_ResponseModel):
     random_state : int
     nu : float
         Matern smoothness (2.5: twice differentiable).
+    trend : {"quadratic", "none"}
+    max_exact : int
+        Most runs for the exact GP; above it, the FITC approximation.
+    n_subset : int
+        Size of the space-filling subset (restarts; hyperparameters and inducing inputs above
+        ``max_exact``).
 
     Attributes
     ----------
     gp_ : GaussianProcessRegressor
+        Fitted on all runs, or on the subset above ``max_exact``.
     transform_ : Transform
     y_mean_, y_scale_ : float
         Standardisation of the latent response (``y_scale_`` is 1 for a constant response).
@@ -212,21 +245,28 @@ class GPModel(_ResponseModel):
     length_scales_ : ndarray (d,)
         Length scales in coded units.
     X_train_, z_train_ : ndarray
-        Training inputs and latent responses.
+        Training inputs and latent responses (all runs).
+    inducing_ : ndarray (m, d) or None
+        Inducing inputs of the FITC approximation (None for the exact GP).
+    sparse_ : FITC or None
+    note_ : str
+        How the model was fitted when the run count changed the method; empty otherwise.
     warning_ : str
-        Empty, or a plain-words note (e.g. constant response).
+        Empty, or a plain-words note (e.g. constant response, approximate model).
     """
 
     kind = "gp"
 
     def __init__(self, transform="none", bounds=None, n_restarts=5, random_state=0, nu=2.5,
-                 trend="quadratic"):
+                 trend="quadratic", max_exact=None, n_subset=None):
         self.transform = transform
         self.bounds = bounds
         self.n_restarts = n_restarts
         self.random_state = random_state
         self.nu = nu
         self.trend = trend
+        self.max_exact = max_exact
+        self.n_subset = n_subset
 
     def _kernel(self, d):
         """Signal ``C * Matern`` (+ a quadratic trend) plus white noise.
@@ -247,54 +287,104 @@ class GPModel(_ResponseModel):
             raise InputError(f"GP trend '{self.trend}' is unknown; use quadratic or none")
         return signal + WhiteKernel(1e-2, NOISE_BOUNDS)
 
+    def _optimise(self, X, ys, kernel, n_restarts):
+        """scikit-learn GP on ``(X, ys)`` with hyperparameters by maximum marginal likelihood."""
+        fast = self.nu in SUPPORTED_NU
+        opt = FastOptimizer(X, ys, self.nu, self.trend == "quadratic", JITTER) if fast else "fmin_l_bfgs_b"
+        gp = GaussianProcessRegressor(kernel=kernel, alpha=JITTER, normalize_y=False, optimizer=opt,
+                                      n_restarts_optimizer=n_restarts, random_state=self.random_state)
+        with warnings.catch_warnings():
+            # hyperparameters at a bound are reported by windowfinder.diagnostics in plain words
+            warnings.simplefilter("ignore", ConvergenceWarning)
+            gp.fit(X, ys)
+        if fast:
+            opt.release()
+        return gp
+
     def fit(self, X, y):
         """Fit to coded settings ``X`` (n, d) and natural-unit responses ``y`` (n,)."""
         X, y = _check_xy(X, y)
-        if X.shape[0] < 2:
-            raise InputError(f"a Gaussian-process model needs at least 2 measured runs, got {X.shape[0]}")
+        n = X.shape[0]
+        if n < 2:
+            raise InputError(f"a Gaussian-process model needs at least 2 measured runs, got {n}")
         self.transform_ = _as_transform(self.transform, self.bounds)
         z = self.transform_.forward(y)
         self.y_mean_ = float(np.mean(z))
         scale = float(np.std(z))
-        self.warning_ = ""
+        notes = []
         if not scale > 1e-12 * max(1.0, abs(self.y_mean_)):
             scale = 1.0
-            self.warning_ = "all measured values are equal; the model predicts a constant"
+            notes.append("all measured values are equal; the model predicts a constant")
         self.y_scale_ = scale
-        gp = GaussianProcessRegressor(kernel=self._kernel(X.shape[1]), alpha=JITTER, normalize_y=False,
-                                      n_restarts_optimizer=self.n_restarts, random_state=self.random_state)
-        with warnings.catch_warnings():
-            # hyperparameters at a bound are reported by windowfinder.diagnostics in plain words
-            warnings.simplefilter("ignore", ConvergenceWarning)
-            gp.fit(X, (z - self.y_mean_) / self.y_scale_)
+        ys = (z - self.y_mean_) / self.y_scale_
+        max_exact = MAX_EXACT_RUNS if self.max_exact is None else int(self.max_exact)
+        m = SUBSET_RUNS if self.n_subset is None else int(self.n_subset)
+        self.inducing_, self.note_ = None, ""
+        if n <= m:
+            gp = self._optimise(X, ys, self._kernel(X.shape[1]), self.n_restarts)
+        else:
+            sub = kcenter(X, m)
+            gp = self._optimise(X[sub], ys[sub], self._kernel(X.shape[1]), self.n_restarts)
+            if n <= max_exact:
+                gp = self._optimise(X, ys, gp.kernel_, 0)
+                self.note_ = (f"{n} runs: optimizer restarts on {m} space-filling runs, final fit on "
+                              f"all {n}")
+            else:
+                self.inducing_ = X[sub]
+                self.note_ = (f"{n} runs (more than {max_exact}): approximate model. Hyperparameters "
+                              f"fitted on {m} space-filling runs; predictions from all runs by the FITC "
+                              "sparse approximation with those runs as inducing points; leave-one-out "
+                              "checks are those of the approximation")
+                notes.append(self.note_)
+        self.warning_ = "; ".join(notes)
         self._store(gp, X, z)
         return self
 
     def _fit_fixed(self, X, z):
-        gp = GaussianProcessRegressor(kernel=self.gp_.kernel_, alpha=JITTER, normalize_y=False, optimizer=None)
-        self._store(gp.fit(X, (z - self.y_mean_) / self.y_scale_), X, z)
+        gp = self.gp_
+        if self.inducing_ is None:
+            gp = GaussianProcessRegressor(kernel=gp.kernel_, alpha=JITTER, normalize_y=False, optimizer=None)
+            gp.fit(X, (z - self.y_mean_) / self.y_scale_)
+        self._store(gp, X, z)
 
     def _store(self, gp, X, z):
         self.gp_ = gp
         self.X_train_, self.z_train_ = X, z
         k = gp.kernel_
-        self._signal = k.k1
         stationary = k.k1.k1 if self.trend == "quadratic" else k.k1
-        self.signal_std_ = self.y_scale_ * float(np.sqrt(stationary.k1.constant_value))
+        c = float(stationary.k1.constant_value)
+        self.signal_std_ = self.y_scale_ * float(np.sqrt(c))
         self.noise_std_ = self.y_scale_ * float(np.sqrt(k.k2.noise_level))
         self.length_scales_ = np.broadcast_to(np.asarray(stationary.k2.length_scale, float),
                                               (X.shape[1],)).copy()
+        if self.nu in SUPPORTED_NU:
+            c_t = float(k.k1.k2.k1.constant_value) if self.trend == "quadratic" else 0.0
+            self._signal = SignalKernel(c, self.length_scales_, self.nu, c_t)
+        else:
+            self._signal = k.k1
+        self.sparse_ = None
+        if self.inducing_ is not None:
+            self.sparse_ = FITC(self._signal, self.inducing_, X, (z - self.y_mean_) / self.y_scale_,
+                                float(k.k2.noise_level) + JITTER)
+
+    def _basis_size(self):
+        return self.X_train_.shape[0] if self.sparse_ is None else self.inducing_.shape[0]
 
     def _moments(self, X, return_std, noise):
         # GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26) with the fitted signal kernel, so the
-        # sd excludes the white-noise term unless asked for
-        Ks = self._signal(X, self.X_train_)
-        mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
+        # sd excludes the white-noise term unless asked for; FITC above max_exact (windowfinder.sparse)
+        if self.sparse_ is not None:
+            mean, var = self.sparse_.moments(X, return_std)
+            mean = self.y_mean_ + self.y_scale_ * mean
+        else:
+            Ks = self._signal(X, self.X_train_)
+            mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
+            if return_std:
+                V = solve_triangular(self.gp_.L_, Ks.T, lower=True, check_finite=False)
+                var = np.maximum(self._signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
         if not return_std:
             return mean, None
-        V = solve_triangular(self.gp_.L_, Ks.T, lower=True, check_finite=False)
-        var = self._signal.diag(X) - np.einsum("ij,ij->j", V, V)
-        var = np.maximum(var, 0.0) * self.y_scale_ ** 2
+        var = var * self.y_scale_ ** 2
         if noise:
             var = var + self.noise_std_ ** 2
         return mean, np.sqrt(var)
@@ -308,13 +398,17 @@ class GPModel(_ResponseModel):
 
         Rasmussen & Williams (2006), §5.4.2, eqs. 5.10-5.12: with ``K`` the full training covariance
         (signal + white noise + jitter), ``mu_i = y_i - [K^-1 y]_i / [K^-1]_ii`` and
-        ``sigma_i^2 = 1 / [K^-1]_ii``. The standardisation constants are held fixed too.
+        ``sigma_i^2 = 1 / [K^-1]_ii``. The standardisation constants are held fixed too. Above
+        ``max_exact`` runs ``K`` is the FITC covariance (:meth:`windowfinder.sparse.FITC.loo`).
 
         Returns
         -------
         mean, sd : ndarray (n,)
             Latent units; ``sd`` is the predictive sd of the held-out observation (includes noise).
         """
+        if self.sparse_ is not None:
+            mu, var = self.sparse_.loo()
+            return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ * np.sqrt(var)
         n = self.X_train_.shape[0]
         Kinv = cho_solve((self.gp_.L_, True), np.eye(n))
         d = np.diag(Kinv)
@@ -383,6 +477,9 @@ class QuadraticModel(_ResponseModel):
         self.bounds = bounds
         self.degree = degree
         self.coding = coding
+
+    def _basis_size(self):
+        return self.coef_.shape[0]
 
     def _features(self, X):
         return quadratic_features(2.0 * X - 1.0 if self.coding == "pm1" else X, self.degree)
@@ -478,18 +575,23 @@ class FailureModel:
     scikit-learn ``GaussianProcessClassifier``, kernel ``C * Matern(2.5)`` with the same bounded length
     scales as :class:`GPModel`. When every run worked, or every run failed, there is no boundary to
     learn: the model returns the constant Laplace rule-of-succession estimate ``(k + 1) / (n + 2)``
-    (k runs worked out of n).
+    (k runs worked out of n). The Laplace approximation costs ``O(n^3)`` per Newton step (about 8 s
+    for 500 runs on one core); with more than ``n_subset`` runs the classifier is fitted on that many
+    runs chosen by farthest-point selection (:func:`windowfinder.sparse.kcenter`) and ``note_`` says so.
 
     Attributes
     ----------
     gpc_ : GaussianProcessClassifier or None
     constant_ : float or None
         The constant probability when the classifier is not used.
+    note_ : str
+        Empty, or how many runs the classifier was fitted on.
     """
 
-    def __init__(self, random_state=0, n_restarts=2):
+    def __init__(self, random_state=0, n_restarts=2, n_subset=None):
         self.random_state = random_state
         self.n_restarts = n_restarts
+        self.n_subset = n_subset
 
     def fit(self, X, works):
         X = _check_xy(X)
@@ -498,10 +600,18 @@ class FailureModel:
             raise InputError(f"{X.shape[0]} runs of factor settings but {works.shape[0]} run outcomes")
         self.d_ = X.shape[1]
         k, n = int(works.sum()), works.shape[0]
-        self.gpc_, self.constant_ = None, None
+        self.gpc_, self.constant_, self.note_ = None, None, ""
         if k in (0, n):
             self.constant_ = (k + 1.0) / (n + 2.0)
             return self
+        m = SUBSET_RUNS if self.n_subset is None else int(self.n_subset)
+        if n > m:
+            sub = kcenter(X, m)
+            if works[sub].all() or not works[sub].any():  # keep one run of the missing outcome
+                sub = np.append(sub, np.flatnonzero(works != works[sub[0]])[0])
+            X, works = X[sub], works[sub]
+            self.note_ = (f"failure model fitted on {len(sub)} space-filling runs of {n} (classification "
+                          "cost grows with the cube of the run count)")
         kernel = ConstantKernel(1.0, CONSTANT_BOUNDS) * Matern(
             length_scale=np.full(self.d_, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=2.5)
         gpc = GaussianProcessClassifier(kernel=kernel, n_restarts_optimizer=self.n_restarts,
