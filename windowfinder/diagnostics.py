@@ -100,6 +100,28 @@ class ModelDiagnostics:
         return df
 
 
+def _effect(model, j: int, n_base: int = 16, levels: int = 9) -> float:
+    """Largest swing of the model's latent mean along factor ``j`` (others held at Sobol base points).
+
+    A Matern length scale at its upper bound alone does not make a factor inactive when the kernel also
+    carries a polynomial trend, so activity is judged from the prediction itself.
+    """
+    from scipy.stats import qmc
+
+    d = model.X_train_.shape[1]
+    base = qmc.Sobol(d, scramble=True, seed=0).random(n_base)
+    X = np.repeat(base, levels, axis=0)
+    X[:, j] = np.tile(np.linspace(0.0, 1.0, levels), n_base)
+    mean = model.predict(X, return_std=False)
+    mean = np.asarray(mean[0] if isinstance(mean, tuple) else mean, dtype=float)
+    return float(np.max(np.ptp(mean.reshape(n_base, levels), axis=1)))
+
+
+def _inactive(model, j: int) -> bool:
+    effects = [_effect(model, k) for k in range(model.X_train_.shape[1])]
+    return effects[j] <= max(model.noise_std_, 0.05 * max(effects), 1e-12 * model.y_scale_)
+
+
 def _length_scale_checks(model, response, factor_names, factor_spans):
     """Length scales in factor units and plain-words warnings for those at a bound."""
     coded = np.asarray(getattr(model, "length_scales_", []), dtype=float)
@@ -115,8 +137,9 @@ def _length_scale_checks(model, response, factor_names, factor_spans):
         if c <= low * BOUND_SLACK:
             notes.append(f"response changes faster along {f} than the runs can resolve (length scale at "
                          f"its lower bound); add runs along {f} or narrow its range")
-        elif c >= high / BOUND_SLACK:
-            notes.append(f"factor {f} looks inactive (length scale at its upper bound)")
+        elif c >= high / BOUND_SLACK and _inactive(model, list(factor_names).index(f)):
+            notes.append(f"factor {f} looks inactive (across its range the model's prediction moves less "
+                         "than the run-to-run scatter or 5 % of the strongest factor's effect)")
     noise_var = (model.noise_std_ / model.y_scale_) ** 2
     if noise_var <= NOISE_BOUNDS[0] * BOUND_SLACK ** 2:
         notes.append("model passes through every run (noise estimated near zero); replicate runs would "
@@ -168,7 +191,10 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     resid = y[ok] - median[ok]
     press = float(resid @ resid)
     ss_tot = float(np.sum((y[ok] - y[ok].mean()) ** 2))
-    q2 = 1.0 - press / ss_tot if ss_tot > 0 else float("nan")
+    # a constant response has no variation to explain: Q^2 is undefined (float noise of a constant
+    # must not pass for variation, hence the relative tolerance)
+    scale = 1e-12 * (float(np.max(np.abs(y[ok]))) if ok.any() else 0.0)
+    q2 = 1.0 - press / ss_tot if ss_tot > max(int(ok.sum()), 1) * scale ** 2 else float("nan")
     rmse = math.sqrt(press / max(int(ok.sum()), 1))
     inside = (low[ok] <= y[ok]) & (y[ok] <= high[ok])
     coverage = float(inside.mean()) if ok.any() else float("nan")
