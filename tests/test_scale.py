@@ -159,6 +159,24 @@ def test_chunked_prediction_equals_unchunked(approx):
     np.testing.assert_allclose(parts[1], whole[1], rtol=1e-12, atol=1e-12)
 
 
+def test_conditioning_the_approximate_model_keeps_its_inducing_points():
+    # kriging-believer fantasies (windowfinder.nextruns) on the FITC path: the conditioned model is FITC
+    # on the augmented runs with the same inducing inputs and hyperparameters
+    X, y = _data(150, seed=13)
+    model = GPModel(n_restarts=0, n_subset=40, max_exact=100).fit(X, y)
+    x_new, z_new = np.array([[0.2, 0.4, 0.6]]), np.array([-0.5])
+    new = model.condition(x_new, z_new)
+    assert new.X_train_.shape[0] == 151 and model.X_train_.shape[0] == 150
+    ys = (np.append(model.z_train_, z_new) - model.y_mean_) / model.y_scale_
+    ref = FITC(model._signal, model.inducing_, np.vstack([X, x_new]), ys,
+               model.gp_.kernel_.k2.noise_level + JITTER)
+    Xt = np.random.default_rng(14).random((20, 3))
+    mu, sd = new.predict(Xt)
+    r_mu, r_var = ref.moments(Xt)
+    np.testing.assert_allclose(mu, model.y_mean_ + model.y_scale_ * r_mu, rtol=1e-10)
+    np.testing.assert_allclose(sd, model.y_scale_ * np.sqrt(r_var), rtol=1e-10)
+
+
 def test_chunk_size_bounds_memory():
     model = GPModel(n_restarts=0).fit(*_data(400, seed=8))
     rows = model._chunk_rows()

@@ -121,6 +121,6 @@ class FITC:
         ``var_i = 1 / [K^-1]_ii`` (Rasmussen & Williams 2006, eqs. 5.10-5.12).
         """
         U = solve_triangular(self.LB_, self.Vs_, lower=True, check_finite=False)
-        kinv_diag = (1.0 - np.einsum("ij,ij->j", U, U)) / self.lam_
+        kinv_diag = np.maximum(1.0 - np.einsum("ij,ij->j", U, U), np.finfo(float).eps) / self.lam_
         alpha = (self.y / np.sqrt(self.lam_) - U.T @ self.beta_) / np.sqrt(self.lam_)
         return self.y - alpha / kinv_diag, 1.0 / kinv_diag
