@@ -159,9 +159,12 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                   best_probability=float(res.best_probability) if res.best_probability is not None
                   else None, best_point=_point(spec, res.best_point), set_point=set_point)
     if not res.found:
+        where = ", ".join(f"{k} = {v:.4g}" for k, v in common["best_point"].items())
+        msg = (f"no region (with its tolerance band) reaches P >= {confidence:g}; the best found is "
+               f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence")
         return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
-                             message=res.message, **common)
+                             message=msg, **common)
     lo_n, hi_n = _inward(spec, spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0])
     tol = np.array([f.tolerance for f in spec.factors])
     glo_n = np.maximum(lo_n - tol, spec.lows)

@@ -63,7 +63,12 @@ def main(argv=None) -> int:
     simulate_planned(study, args.case, study.spec.seed)
     step("check", ["check", str(folder)])
     step("fit", ["fit", str(folder)])
+    import json
+
     for verb in cli.DEMO_VERBS:
+        if verb[0] == "testplan" and not json.loads((folder / "out" / "window.json").read_text())["found"]:
+            print("\n(no window at this confidence, so no verification plan; see the window step)")
+            continue
         step(verb[0], [verb[0], str(folder), *verb[1:]])
     summary(folder)
     return 0
