@@ -3,7 +3,7 @@
 Full cycle = load the study, fit one GP per response with leave-one-out diagnostics, find the window,
 search the trade-off and propose 4 next runs, on the synthetic study of :mod:`benchmarks.speed` (three
 limited responses, two goals). Each size runs in a fresh Python process (single-threaded BLAS), so its
-peak resident memory (``getrusage(RUSAGE_SELF).ru_maxrss``) is its own; the memory after imports and
+peak resident memory (``VmHWM``, see :func:`_rss_mb`) is its own; the memory after imports and
 data generation is given too. The largest size is then profiled (cProfile, one profile per stage, in
 another fresh process) and the hottest functions of each stage are listed.
 ``main(quick)`` returns the Markdown section; figures are printed as they come, never asserted.
@@ -30,6 +30,18 @@ TOP = 6
 
 
 def _rss_mb() -> float:
+    """Peak resident set size of this process so far, MB.
+
+    Linux's ``VmHWM`` (the address space's high-water mark, new at ``exec``); ``ru_maxrss`` would also
+    count the parent's memory at the fork that started this process.
+    """
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return float(line.split()[1]) / 1024.0
+    except OSError:
+        pass
     return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0   # Linux: kilobytes
 
 

@@ -41,7 +41,7 @@ JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (sci
 # points. Measured on one core: an exact likelihood evaluation with its gradient takes about 0.1 s at
 # 1000 runs and 0.35 s at 1500 (O(n^3)), a 500-run one about 0.02 s; held-out error of the FITC path
 # against the exact GP: Hartmann-3 with 1200 runs 0.036 vs 0.036, Friedman's 10-factor function with
-# 2000 runs 0.250 vs 0.244 (tests/test_scale.py, docs/benchmarks.md).
+# 2000 runs 0.256 vs 0.233 (tests/test_scale.py, docs/benchmarks.md).
 MAX_EXACT_RUNS = 1000
 SUBSET_RUNS = 500
 
