@@ -4,9 +4,9 @@ Property-based tests (Hypothesis) build malformed ``study.toml`` and ``runs.csv`
 missing and unknown keys, NaN/inf, huge values, binary bytes, duplicate ids and names, contradictory
 limits, latin-1 / UTF-16 / BOM encodings, ';'-separated CSV, decimal commas, ragged rows, stray quotes,
 very long lines, unicode names — and run ``check``, ``fit`` and ``window`` on them in-process. The
-contract (docs/DESIGN.md, "CLI verbs" and "runs.csv") is the expectation: exit 0, or exit 2 with a short
-message naming the file; never exit 1 or a traceback; input files byte-identical; ``out/`` only on
-success; JSON output strict (no NaN / Infinity tokens).
+design's file contracts (DESIGN.md, "CLI verbs" and "runs.csv") are the expectation: exit 0, or exit 2
+with a short message naming the file; never exit 1 or a traceback; input files byte-identical; ``out/``
+only on success; JSON output strict (no NaN / Infinity tokens).
 
 A second group drives numerically awkward but valid data through the Python API (duplicate settings, a
 constant response, a factor held at one level, values at 1e-9 and 1e9, strongly correlated factors, all
@@ -30,6 +30,7 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from sklearn.linear_model import LinearRegression
+from threadpoolctl import threadpool_limits
 
 from windowfinder.answers import build_window
 from windowfinder.cli import main
@@ -38,6 +39,15 @@ from windowfinder.spec import Factor, StudySpec
 from windowfinder.study import Study
 
 INPUTS = ("study.toml", "runs.csv")
+
+
+@pytest.fixture(autouse=True, scope="module")
+def one_blas_thread():
+    """Run as the console script does: windowfinder/__init__.py asks for single-threaded BLAS, but only
+    takes effect when it is imported before NumPy, which pytest does not guarantee; multi-threaded BLAS on
+    these tiny matrices makes every fit several times slower on a busy machine."""
+    with threadpool_limits(1, user_api="blas"):
+        yield
 
 FUZZ = settings(deadline=None, derandomize=True, database=None, print_blob=False,
                 suppress_health_check=[HealthCheck.too_slow, HealthCheck.data_too_large])
@@ -206,10 +216,13 @@ def csv_text(table: list[list[str]], sep: str = ",", eol: str = "\n") -> str:
 BASE_CODED = [[0.2, 0.2], [0.4, 0.4], [0.6, 0.6], [0.8, 0.8], [0.1, 14 / 15]]  # BASE_ROWS factors, coded
 
 
+def _is_number(v) -> bool:
+    return isinstance(v, (int, float)) and not isinstance(v, bool)
+
+
 def _bounds(t) -> tuple[float, float] | None:
     lo, hi = (t.get("low"), t.get("high")) if isinstance(t, dict) else (None, None)
-    ok = all(isinstance(v, (int, float)) and not isinstance(v, bool) and abs(v) < 1e100 and math.isfinite(v)
-             for v in (lo, hi))
+    ok = all(_is_number(v) and abs(v) < 1e100 and math.isfinite(v) for v in (lo, hi))
     return (float(lo), float(hi)) if ok and lo < hi else None
 
 
@@ -240,10 +253,9 @@ def runs_for(doc: dict, scales=(1.0, 1.0)) -> str:
 # strategies
 # ------------------------------------------------------------------------------------------------
 
-NASTY_NAMES = ["run", "Status", "note", " ", "", "yield", "time", "a,b", 'q"uote', "tab\tname", "line\nbreak",
-               "ünïcödé", "温度", "température", "😀", "=cmd|' /C calc'!A0", "x" * 3000, "\u200b",
-               "ß",
-               "Ω-resistance", "\x01ctrl"]
+NASTY_NAMES = ["run", "Status", "note", " ", "", "yield", "time", "a,b", 'q"uote', "tab\tname",
+               "line\nbreak", "ünïcödé", "温度", "température", "😀", "=cmd|' /C calc'!A0", "x" * 3000,
+               "\u200b", "ß", "Ω-resistance", "\x01ctrl"]
 names = st.one_of(st.sampled_from(NASTY_NAMES), st.text(max_size=12))
 weird_values = st.one_of(
     st.booleans(),
@@ -291,10 +303,6 @@ BENIGN = {  # valid values that are unusual: they should reach the models
     "response": [("transform", "log"), ("transform", "none"), ("kind", "quality"), ("goal", "minimize"),
                  ("goal", "none"), ("unit", "µg/L"), ("bounds", None)],
 }
-
-
-def _is_number(v) -> bool:
-    return isinstance(v, (int, float)) and not isinstance(v, bool)
 
 
 @st.composite
@@ -397,11 +405,11 @@ def encode(text: str, how: str, junk: bytes, cut: int) -> bytes:
 # half the files keep plain UTF-8 so that the structural mutations are reached
 encodings = st.one_of(st.just("utf-8"), st.sampled_from(["bom", "latin-1", "utf-16", "crlf", "cr", "junk",
                                                         "truncate", "empty", "long"]))
-# what runs after a passing check: nothing more (2/5), fit (2/5) or window (1/5, the dearest)
-verbs = st.integers(0, 4).map(lambda i: ("check", "fit", "check", "fit", "window")[i])
+# what runs after a passing check: nothing more, fit or window (about a third each)
+verbs = st.integers(0, 2).map(lambda i: ("check", "fit", "window")[i])
 
 
-@settings(FUZZ, max_examples=115)
+@settings(FUZZ, max_examples=150)
 @given(drawn=study_docs(), how=encodings, junk=st.binary(min_size=1, max_size=8),
        cut=st.integers(0, 10_000), verb=verbs)
 def test_malformed_study_files_are_refused_cleanly(drawn, how, junk, cut, verb):
@@ -515,7 +523,7 @@ def apply_run_op(table: list[list[str]], op) -> None:
         table[args[0] % n].extend(["1"] * args[1])
 
 
-@settings(FUZZ, max_examples=115)
+@settings(FUZZ, max_examples=150)
 @given(ops=st.lists(st.one_of(benign_ops, run_ops), min_size=1, max_size=3),
        sep=st.integers(0, 7).map(lambda i: {0: ";", 1: "\t"}.get(i, ",")),
        decimal_comma=st.sampled_from([False, False, False, True]), how=encodings,
