@@ -7,6 +7,8 @@ Usage: ``python -m benchmarks.run [--quick] [--only NAME ...]``.
 
 from __future__ import annotations
 
+import windowfinder  # noqa: F401  (first: it holds BLAS to one thread before numpy loads)
+
 import argparse
 import importlib
 import platform

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import windowfinder  # noqa: F401  (first: it holds BLAS to one thread before numpy loads)
+
 import hashlib
 from pathlib import Path
 

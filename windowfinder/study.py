@@ -201,9 +201,12 @@ class Study:
                 raise InputError(f"{self.runs_path.name}: response '{r.name}' has {n} measured runs; "
                                  f"fitting a {kind} model needs at least {need}; add runs first "
                                  "(windowfinder design)")
+        from threadpoolctl import threadpool_limits
+
         transforms = {r.name: (r.transform, r.bounds) for r in self.spec.responses}
-        sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
-                                    kind=kind, n_restarts=n_restarts, seed=self.spec.seed)
+        with threadpool_limits(1, user_api="blas"):  # small matrices: threads cost more than they give
+            sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
+                                        kind=kind, n_restarts=n_restarts, seed=self.spec.seed)
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
@@ -213,6 +216,8 @@ class Study:
         warnings = list(self.runs.warnings)
         for dg in diags:
             warnings += [f"{dg.response}: {w}" for w in dg.warnings]
+        if sur.failure is not None and getattr(sur.failure, "note_", ""):
+            warnings.append(f"failure model: {sur.failure.note_}")
         return FitResult(sur, diags, X, warnings)
 
     def suggest(self, count: int, aim: str = "balanced", fit: FitResult | None = None,
