@@ -9,7 +9,6 @@ import sys
 import time
 from pathlib import Path
 
-import pandas as pd
 import pytest
 
 from windowfinder.cli import main

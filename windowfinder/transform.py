@@ -1,0 +1,95 @@
+"""Monotone output transforms: a response on the latent scale ``z = g(y)`` where its model is Gaussian.
+
+``none`` (identity), ``log`` (positive responses spanning orders of magnitude) and ``logit`` (responses
+between two physical bounds, e.g. a yield in 0..100 %). Limits map through ``g`` exactly because ``g`` is
+monotone.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from scipy.special import expit
+
+from windowfinder.errors import InputError
+
+TRANSFORM_KINDS = ("none", "log", "logit")
+
+
+class Transform:
+    """Monotone increasing output transform ``z = g(y)``.
+
+    Parameters
+    ----------
+    kind : {"none", "log", "logit"}
+        ``log``: ``z = log(y - a)`` with ``a = bounds[0]`` (0 when no bounds are given), needs ``y > a``.
+        ``logit``: ``z = log((y - a) / (b - y))``, needs ``bounds = (a, b)`` and ``a < y < b``.
+    bounds : (float, float) or None
+        Physical bounds of the response (natural units).
+    """
+
+    def __init__(self, kind="none", bounds=None):
+        if kind not in TRANSFORM_KINDS:
+            raise InputError(f"transform '{kind}' is unknown; use one of {', '.join(TRANSFORM_KINDS)}")
+        self.kind = kind
+        self.bounds = None if bounds is None else tuple(
+            float(v) if v is not None else (-np.inf, np.inf)[i] for i, v in enumerate(bounds))
+        if kind == "logit" and (self.bounds is None or len(self.bounds) != 2
+                                or not np.all(np.isfinite(self.bounds)) or not self.bounds[0] < self.bounds[1]):
+            raise InputError(f"transform logit needs bounds = [low, high] with low < high, got {bounds}; give "
+                             "the physical bounds of the response (e.g. [0, 100] for a percentage)")
+        # domain (lower, upper) of the transform; "none" has no domain limits even with bounds given
+        self.lower = -np.inf if kind == "none" else (
+            self.bounds[0] if self.bounds and np.isfinite(self.bounds[0]) else 0.0)
+        self.upper = self.bounds[1] if kind == "logit" else np.inf
+
+    def __repr__(self):
+        return f"Transform(kind={self.kind!r}, bounds={self.bounds!r})"
+
+    def _g(self, y):
+        if self.kind == "none":
+            return y.copy()
+        with np.errstate(divide="ignore"):  # a bound itself maps to -inf / +inf
+            z = np.log(y - self.lower)
+            return z if self.kind == "log" else z - np.log(self.upper - y)
+
+    def forward(self, y):
+        """Natural units to latent scale; values outside the open domain raise InputError."""
+        y = np.asarray(y, dtype=float)
+        bad = np.isfinite(y) & ~((y > self.lower) & (y < self.upper))
+        if np.any(bad):
+            dom = f"({self.lower:g}, {self.upper:g})" if self.kind == "logit" else f"> {self.lower:g}"
+            raise InputError(f"transform {self.kind}: value {y[bad].flat[0]:g} is outside its domain {dom}; "
+                             "check the value, widen the bounds or use transform = \"none\"")
+        return self._g(y)
+
+    def inverse(self, z):
+        """Latent scale to natural units (``+-inf`` map to the bounds)."""
+        z = np.asarray(z, dtype=float)
+        if self.kind == "none":
+            return z.copy()
+        if self.kind == "log":
+            return self.lower + np.exp(z)
+        return self.lower + (self.upper - self.lower) * expit(z)
+
+    def inverse_slope(self, z):
+        """Derivative ``dy/dz`` of the inverse transform (for delta-method conversions)."""
+        z = np.asarray(z, dtype=float)
+        if self.kind == "none":
+            return np.ones_like(z)
+        if self.kind == "log":
+            return np.exp(z)
+        s = expit(z)
+        return (self.upper - self.lower) * s * (1.0 - s)
+
+    def forward_limit(self, v):
+        """Transform a limit; ``None`` passes through, limits at or beyond a bound map to ``+-inf``."""
+        if v is None:
+            return None
+        z = self._g(np.clip(np.asarray(v, dtype=float), self.lower, self.upper))
+        return float(z) if z.ndim == 0 else z
+
+
+def _as_transform(transform, bounds):
+    return transform if isinstance(transform, Transform) else Transform(transform, bounds)
+
+
