@@ -33,7 +33,8 @@ import numpy as np
 import pandas as pd
 
 from .errors import InputError
-from .evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, check_count, make_engine, one_line
+from .engines import check_count, make_engine
+from .evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, one_line
 from .runs import append_runs, format_rows, next_ids, read_runs, write_atomic, write_runs
 from .study import Study
 
