@@ -35,13 +35,14 @@ from typing import Callable
 
 import numpy as np
 from scipy import ndimage
-from scipy.stats import qmc
+from scipy.stats import norm, qmc
 
 from windowfinder.cases import RunFailed, case_dir, load_simulator
 from windowfinder.hypervolume import hypervolume
 from windowfinder.spec import StudySpec
 
 GRID = {2: 201, 3: 81}  # grid points per factor for the brute-force truth (coded spacing 1/(n-1))
+CONFIDENCE = 0.95  # the confidence every window and front of the benchmark is stated at
 
 
 @dataclass
@@ -60,6 +61,8 @@ class Problem:
         :class:`~windowfinder.cases.RunFailed`); None: a run returns the noise-free truth.
     published_front : callable or None
         Returns the published true front in minimisation form (pymoo's ``pareto_front()``), when any.
+    noise : dict or None
+        The simulator's run-to-run noise per response (:class:`windowfinder.cases.scenario.Noise`).
     """
 
     name: str
@@ -68,6 +71,7 @@ class Problem:
     truth_fn: Callable
     run_fn: Callable | None = None
     published_front: Callable | None = None
+    noise: dict | None = None
 
     @property
     def d(self) -> int:
@@ -104,6 +108,28 @@ class Problem:
                 if hi is not None:
                     ok &= t[name] <= hi
         return ok
+
+    def run_probability(self, U) -> np.ndarray:
+        """True probability that a new run at coded settings ``U`` meets every limit.
+
+        What a perfect model would report: the noise-free truth with the simulator's own noise
+        (additive: ``y + sd e``; relative: ``y exp(sd e)``, ``e`` standard normal, independent per
+        response). Without noise it is the indicator of :meth:`feasible`. The failure of a run is taken
+        at its nominal (noise-free) setting: run-to-run scatter of the failure threshold is left out.
+        """
+        if self.noise is None:
+            return self.feasible(U).astype(float)
+        t = self.truth(U)
+        p = np.asarray(t["works"], float)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            for name, lo, hi in self.limits:
+                n, y = self.noise[name], np.where(t["works"], t[name], np.nan)
+                if n.kind == "relative":
+                    y, lo, hi = np.log(y), None if lo is None else np.log(lo), None if hi is None else np.log(hi)
+                below = norm.cdf((hi - y) / n.sd) if hi is not None else 1.0
+                above = norm.cdf((lo - y) / n.sd) if lo is not None else 0.0
+                p = p * np.nan_to_num(below - above, nan=0.0)
+        return p
 
     def objectives(self, values: dict) -> np.ndarray:
         """Goals in minimisation form (maximize -> -y, minimize -> y, target -> |y - t|), (n, m)."""
@@ -199,7 +225,8 @@ def _pymoo_front(name, **kw):
 def simulator_problem(case: str) -> Problem:
     sim = load_simulator(case)
     spec = StudySpec.from_toml(case_dir(case) / "study.toml")
-    return Problem(case, f"bundled {case} simulator (noisy runs)", spec, sim.truth, sim.evaluate)
+    return Problem(case, f"bundled {case} simulator (noisy runs)", spec, sim.truth, sim.evaluate,
+                   noise=sim.NOISE)
 
 
 def analytic_problem(name: str) -> Problem:
@@ -360,6 +387,10 @@ class Reference:
     ----------
     box_volume : float
         Largest truly feasible box (coded volume) whose guard box is feasible too.
+    run_volume : float
+        Largest box whose guard box holds only settings where a new run truly meets every limit with
+        probability >= 0.95 (:meth:`Problem.run_probability`): the 95 % window a perfect model would
+        state. Equal to ``box_volume`` for noise-free problems.
     feasible_share : float
         Share of the grid that is feasible.
     front : ndarray (k, m)
@@ -372,6 +403,7 @@ class Reference:
     """
 
     box_volume: float
+    run_volume: float
     feasible_share: float
     front: np.ndarray
     ref_point: np.ndarray
@@ -388,6 +420,8 @@ def reference(name: str, n_grid: int | None = None) -> Reference:
     ok = p.feasible(U)
     mask = ok.reshape((n,) * p.d)
     volume = largest_box_volume(eroded(mask, p.spec.tolerances_coded))
+    run_mask = (p.run_probability(U) >= CONFIDENCE).reshape((n,) * p.d)
+    run_volume = largest_box_volume(eroded(run_mask, p.spec.tolerances_coded)) if p.noisy else volume
     F_grid = p.objectives({k: v[ok] for k, v in t.items() if k != "works"})
     if p.published_front is not None:
         front = p.published_front()
@@ -398,7 +432,7 @@ def reference(name: str, n_grid: int | None = None) -> Reference:
     else:
         lo, hi = front.min(axis=0), front.max(axis=0)
         ref = hi + 0.1 * (hi - lo)
-    return Reference(volume, float(ok.mean()), front, ref, hypervolume(front, ref))
+    return Reference(volume, run_volume, float(ok.mean()), front, ref, hypervolume(front, ref))
 
 
 def truth_problem(p: Problem, record: list | None = None):

@@ -37,9 +37,8 @@ from windowfinder.surrogate import Surrogates
 from windowfinder.tradeoff import find_tradeoff, normalised_igd
 from windowfinder.window import find_window
 
-from .problems import Problem, box_precision, non_dominated, truth_problem
+from .problems import CONFIDENCE, Problem, box_precision, non_dominated, truth_problem
 
-CONFIDENCE = 0.95
 N_RESTARTS = 2               # GP optimizer restarts (windowfinder's default is 5), for speed
 TRADEOFF_SEARCH = {"pop_size": 40, "n_gen": 40}   # windowfinder's default is 100 x 150, for speed
 BATCH = 2
@@ -89,18 +88,24 @@ def fit(problem: Problem, X, Y, works, kind="gp", seed=0):
 def judge(problem: Problem, ref, sur, X, seed: int) -> dict:
     """Claimed 95 % window and trade-off front of fitted models, measured against the truth.
 
-    Returns ``found``, ``precision`` (share of the stated window truly feasible), ``recall`` (stated
-    window volume / largest truly feasible window), ``hv_ratio`` (hypervolume of the truly feasible
-    points of the claimed front / that of the true front) and ``igd`` (normalised IGD of those points).
+    Returns ``found``, ``precision`` (share of the stated window truly feasible), ``run_precision``
+    (share of it where a new run truly meets every limit with probability >= 0.95), ``recall`` (stated
+    window volume / largest truly feasible window), ``run_recall`` (the same over the largest window a
+    perfect model would state at 95 %), ``hv_ratio`` (hypervolume of the truly feasible points of the
+    claimed front / that of the true front) and ``igd`` (normalised IGD of those points).
     """
-    out = {"found": False, "precision": np.nan, "recall": 0.0, "hv_ratio": 0.0, "igd": np.inf}
+    out = {"found": False, "precision": np.nan, "run_precision": np.nan, "recall": 0.0, "run_recall": 0.0,
+           "hv_ratio": 0.0, "igd": np.inf}
     if sur is None:
         return out
     feas = Feasibility(problem.limits, sur, X)
     w = find_window(feas.joint, problem.d, CONFIDENCE, tolerance=problem.spec.tolerances_coded, seed=seed)
     if w.found:
-        out.update(found=True, recall=float(w.volume) / ref.box_volume,
-                   precision=box_precision(problem.feasible, w.lower, w.upper, seed=seed))
+        precision = box_precision(problem.feasible, w.lower, w.upper, seed=seed)
+        run_precision = box_precision(lambda U: problem.run_probability(U) >= CONFIDENCE, w.lower, w.upper,
+                                      seed=seed) if problem.noisy else precision
+        out.update(found=True, precision=precision, run_precision=run_precision,
+                   recall=float(w.volume) / ref.box_volume, run_recall=float(w.volume) / ref.run_volume)
     out["hv_ratio"], out["igd"] = judge_front(problem, ref, sur, feas, seed, TRADEOFF_SEARCH)
     return out
 
@@ -171,30 +176,28 @@ def run_strategy(problem: Problem, ref, strategy: str, budgets, seed: int) -> li
     return sequential(problem, ref, strategy, budgets, seed)
 
 
-def nsga_evaluations(problem: Problem, ref, targets, seed: int, pop_size: int = 40,
-                     max_evals: int = 20000) -> list[float]:
+def nsga_evaluations(problem: Problem, ref, target: float, seed: int, pop_size: int = 40,
+                     max_evals: int = 20000) -> float:
     """Evaluations NSGA-II on the noise-free truth needs until the normalised IGD of its feasible,
-    non-dominated archive is at or below each target (``inf`` when not within ``max_evals``).
+    non-dominated archive is at or below ``target`` (``inf`` when not within ``max_evals``).
 
-    pymoo's NSGA-II with its default operators (SBX crossover, polynomial mutation; Deb et al. 2002).
+    pymoo's NSGA-II with its default operators (SBX crossover, polynomial mutation; Deb et al. 2002),
+    run generation by generation and stopped once the target is reached.
     """
     from pymoo.algorithms.moo.nsga2 import NSGA2
-    from pymoo.optimize import minimize
 
     record: list = []
-    minimize(truth_problem(problem, record), NSGA2(pop_size=pop_size), ("n_eval", max_evals), seed=seed,
-             verbose=False)
-    reached = [np.inf] * len(targets)
-    archive = np.empty((0, len(problem.goals)))
-    evals = 0
-    for F, ok in record:
-        evals += len(F)
-        if ok.any():
-            archive = non_dominated(np.vstack([archive, F[ok]]))
-            value = normalised_igd(archive, ref.front)
-            for i, t in enumerate(targets):
-                if reached[i] == np.inf and value <= t:
-                    reached[i] = evals
-        if all(r < np.inf for r in reached):
-            break
-    return reached
+    algorithm = NSGA2(pop_size=pop_size)
+    algorithm.setup(truth_problem(problem, record), termination=("n_eval", max_evals), seed=seed,
+                    verbose=False)
+    archive, evals, seen = np.empty((0, len(problem.goals))), 0, 0
+    while algorithm.has_next():
+        algorithm.next()
+        for F, ok in record[seen:]:
+            evals += len(F)
+            if ok.any():
+                archive = non_dominated(np.vstack([archive, F[ok]]))
+                if normalised_igd(archive, ref.front) <= target:
+                    return float(evals)
+        seen = len(record)
+    return np.inf

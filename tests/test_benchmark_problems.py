@@ -44,38 +44,25 @@ def _brute_front(name, n):
 
 
 # -- definitions against pymoo's reference implementations (Blank & Deb 2020, "pymoo: Multi-objective
-# -- optimization in Python", IEEE Access 8) ------------------------------------------------------
+# -- optimization in Python", IEEE Access 8) -------------------------------------------------------
 
-def test_bnh_matches_pymoo():
+@pytest.mark.parametrize("name, kwargs, limits, scale", [
     # BNH, Deb (2001), Multi-Objective Optimization using Evolutionary Algorithms, table 14; pymoo
-    # divides g1 by 25 and g2 by -7.7 (same sign convention g <= 0 feasible after its sign flip)
-    p, ref = get_problem("bnh"), pymoo_problem("bnh")
-    U = _sobol(2)
-    t, F = _values(p, U)
-    F_ref, G_ref = ref.evaluate(p.spec.to_natural(U), return_values_of=["F", "G"])
-    np.testing.assert_allclose(F, F_ref, rtol=1e-12)
-    np.testing.assert_allclose(t["g1"], 25.0 * G_ref[:, 0], rtol=1e-12, atol=1e-12)
-    np.testing.assert_allclose(t["g2"], 7.7 * G_ref[:, 1], rtol=1e-12, atol=1e-12)
-
-
-def test_srn_matches_pymoo():
+    # divides g1 by 25 and g2 by -7.7 and flips g2's sign, so g <= 0 stays the feasible side
+    ("bnh", {}, ["g1", "g2"], [25.0, 7.7]),
     # SRN, Srinivas & Deb (1994), Evolutionary Computation 2(3)
-    p, ref = get_problem("srn"), pymoo_problem("srn")
-    U = _sobol(2)
+    ("srn", {}, ["g1", "g2"], [1.0, 1.0]),
+    # C2-DTLZ2, Jain & Deb (2014), IEEE Trans. Evol. Comput. 18(4), section VI; r = 0.2 for two goals
+    ("c2dtlz2", {"n_var": 3, "n_obj": 2}, ["c"], [1.0]),
+])
+def test_definition_matches_pymoo(name, kwargs, limits, scale):
+    p, ref = get_problem(name), pymoo_problem(name, **kwargs)
+    U = _sobol(p.d)
     t, F = _values(p, U)
     F_ref, G_ref = ref.evaluate(p.spec.to_natural(U), return_values_of=["F", "G"])
     np.testing.assert_allclose(F, F_ref, rtol=1e-12)
-    np.testing.assert_allclose(np.column_stack([t["g1"], t["g2"]]), G_ref, rtol=1e-12, atol=1e-12)
-
-
-def test_c2dtlz2_matches_pymoo():
-    # C2-DTLZ2, Jain & Deb (2014), IEEE Trans. Evol. Comput. 18(4), section VI; pymoo's r = 0.2 for 2 goals
-    p, ref = get_problem("c2dtlz2"), pymoo_problem("c2dtlz2", n_var=3, n_obj=2)
-    U = _sobol(3)
-    t, F = _values(p, U)
-    F_ref, G_ref = ref.evaluate(U, return_values_of=["F", "G"])
-    np.testing.assert_allclose(F, F_ref, rtol=1e-12)
-    np.testing.assert_allclose(t["c"], G_ref[:, 0], rtol=1e-12, atol=1e-12)
+    np.testing.assert_allclose(np.column_stack([t[g] for g in limits]), G_ref * scale, rtol=1e-12,
+                               atol=1e-12)
 
 
 @pytest.mark.parametrize("name, n, tol", [("bnh", 301, 0.01), ("srn", 401, 0.01), ("c2dtlz2", 61, 0.02)])
@@ -178,3 +165,21 @@ def test_central_composite_budget_holds_the_whole_design():
         assert X.shape == (n, d)
         base = np.unique(central_composite(d, "face", centre=1), axis=0)
         np.testing.assert_array_equal(np.unique(X, axis=0), base)
+
+
+@pytest.mark.parametrize("name", ["reactor", "tempering"])
+def test_run_probability_matches_the_simulators_own_runs(name):
+    # brute force: the share of 400 seeded noisy runs of the simulator (its evaluate()) that meet every
+    # limit, at settings where the probability is neither 0 nor 1; binomial sd <= 0.025
+    p = get_problem(name)
+    U = _sobol(p.d, 4096, seed=1)
+    P = p.run_probability(U)
+    middle = (P > 0.2) & (P < 0.9)
+    assert middle.sum() >= 3
+    for u, expected in zip(U[middle][:3], P[middle][:3]):
+        settings = dict(zip(p.spec.factor_names, p.spec.to_natural(u)[0]))
+        met = 0
+        for seed in range(400):
+            y = p.run_fn(settings, seed=seed)
+            met += all((lo is None or y[r] >= lo) and (hi is None or y[r] <= hi) for r, lo, hi in p.limits)
+        assert met / 400 == pytest.approx(expected, abs=0.1)
