@@ -124,8 +124,9 @@ class Problem:
         with np.errstate(divide="ignore", invalid="ignore"):
             for name, lo, hi in self.limits:
                 n, y = self.noise[name], np.where(t["works"], t[name], np.nan)
-                if n.kind == "relative":
-                    y, lo, hi = np.log(y), None if lo is None else np.log(lo), None if hi is None else np.log(hi)
+                if n.kind == "relative":  # log-normal reading: compare on the log scale
+                    y = np.log(y)
+                    lo, hi = (None if v is None else np.log(v) for v in (lo, hi))
                 below = norm.cdf((hi - y) / n.sd) if hi is not None else 1.0
                 above = norm.cdf((lo - y) / n.sd) if lo is not None else 0.0
                 p = p * np.nan_to_num(below - above, nan=0.0)
@@ -237,7 +238,8 @@ def analytic_problem(name: str) -> Problem:
     if name == "srn":
         spec = _spec(name, [_factor("x1", -20, 20), _factor("x2", -20, 20)],
                      [_goal("f1"), _goal("f2"), _limit("g1"), _limit("g2")])
-        return Problem(name, "SRN (Srinivas & Deb 1994)", spec, srn_truth, published_front=_pymoo_front("srn"))
+        return Problem(name, "SRN (Srinivas & Deb 1994)", spec, srn_truth,
+                       published_front=_pymoo_front("srn"))
     if name == "c2dtlz2":
         spec = _spec(name, [_factor(f"x{i + 1}", 0, 1) for i in range(3)],
                      [_goal("f1"), _goal("f2"), _limit("c")])

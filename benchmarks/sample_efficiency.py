@@ -10,7 +10,6 @@ the closed-loop campaign on the bundled reactor and writes the Markdown section.
 from __future__ import annotations
 
 import os
-import re
 import resource
 import sys
 import tempfile
@@ -21,13 +20,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from windowfinder.answers import build_window
-from windowfinder.campaign import run_campaign, run_seed
-from windowfinder.cases import case_dir
-from windowfinder.study import Study
-
 from . import strategies as st
-from .problems import ANALYTIC, SIMULATORS, box_precision, get_problem, reference
+from .problems import ANALYTIC, SIMULATORS, get_problem, reference
 
 RECALL_TARGET, PRECISION_TARGET = 0.5, 0.95
 FULL = {"problems": SIMULATORS + ANALYTIC, "seeds": (1, 2, 3, 4, 5),
@@ -76,7 +70,7 @@ def run_grid(cfg, refs) -> tuple[pd.DataFrame, list]:
     jobs.sort(key=lambda j: (order[j[0]], j[1] not in st.SEQUENTIAL))
     rows, camps, left = [], [], {name: sum(j[0] == name for j in jobs) for name in cfg["problems"]}
     with ProcessPoolExecutor(max_workers=WORKERS) as pool, tempfile.TemporaryDirectory() as tmp:
-        futures = {pool.submit(campaign_once, Path(tmp) / f"s{seed}", seed, cfg["campaign_budget"]):
+        futures = {pool.submit(st.campaign_once, Path(tmp) / f"s{seed}", seed, cfg["campaign_budget"]):
                    ("campaign", seed) for seed in cfg["campaign_seeds"]}
         futures.update({pool.submit(_task, *j): j for j in jobs})
         for fut in as_completed(futures):
@@ -185,48 +179,6 @@ def nsga_table(df, refs, cfg) -> tuple[str, dict]:
 
 # -- the closed-loop campaign on the reactor --------------------------------------------------------
 
-def _study_folder(root: Path, seed: int) -> Path:
-    folder = root / f"seed{seed}"
-    folder.mkdir(parents=True)
-    text = (case_dir("reactor") / "study.toml").read_text()
-    (folder / "study.toml").write_text(re.sub(r"(?m)^seed = \d+", f"seed = {seed}", text))
-    return folder
-
-
-def _judge_study(folder: Path) -> dict:
-    """Window of a study folder (default fit, 95 %), judged against the reactor's truth."""
-    study = Study.load(folder)
-    win = build_window(study.spec, study.fit(), 0.95)
-    problem = get_problem("reactor")
-    out = {"runs": len(study.runs.frame), "completed": len(study.runs.completed()), "found": win.found,
-           "volume": 0.0, "precision": np.nan, "run_precision": np.nan}
-    if win.found:
-        lo, hi = win.coded_box(study.spec)
-        out.update(volume=float(np.prod(hi - lo)), precision=box_precision(problem.feasible, lo, hi),
-                   run_precision=box_precision(lambda U: problem.run_probability(U) >= 0.95, lo, hi))
-    return out
-
-
-def campaign_once(root: Path, seed: int, budget: int) -> dict:
-    """windowfinder's closed loop (8 initial, batches of 2, 2 workers, aim window) against a one-shot
-    space-filling design of the same size, both judged by the same window at 95 %."""
-    from windowfinder.cases.reactor.simulator import evaluate
-
-    loop = _study_folder(root / "loop", seed)
-    run_campaign(loop, function="windowfinder.cases.reactor.simulator:evaluate", budget=budget, initial=8,
-                 batch=2, workers=2, aim="window", progress=lambda line: None)
-    shot = _study_folder(root / "oneshot", seed)
-    study = Study.load(shot)
-    frame = study.design("space-filling", runs=budget)
-    for i, row in frame.iterrows():
-        out = evaluate({f: row[f] for f in study.spec.factor_names}, seed=run_seed(seed, row["run"]))
-        for r, v in out.items():
-            frame.at[i, r] = v
-    frame["status"] = "done"
-    study.add_runs(frame)
-    return {"seed": seed, "loop": _judge_study(loop), "oneshot": _judge_study(shot)}
-
-
 def _say_campaign(r: dict) -> None:
     a, b = r["loop"], r["oneshot"]
     say(f"reactor campaign seed {r['seed']}: closed loop precision {_fmt(a['precision'])}, volume "
@@ -315,8 +267,8 @@ def _verdict(ratios, share, nsga_ratios, camp) -> list[str]:
                      + f": {met(all(share[a][i] >= 0.9 for a in aims))}.")
     for pop, values in nsga_ratios.items():
         if values:
-            lines.append(f"- >= 50x fewer evaluations than NSGA-II (population {pop}) on the truth for the same "
-                         f"IGD: measured x{min(values):.1f} to x{max(values):.1f}: "
+            lines.append(f"- >= 50x fewer evaluations than NSGA-II (population {pop}) on the truth for the "
+                         f"same IGD: measured x{min(values):.1f} to x{max(values):.1f}: "
                          f"{met(all(r >= 50 for r in values))} (reached on {sum(r >= 50 for r in values)} of "
                          f"{len(values)} problems where windowfinder's front had a truly feasible point).")
     n = camp["n"]

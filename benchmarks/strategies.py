@@ -19,25 +19,34 @@ then add runs in batches until each budget on the grid is reached exactly (the s
 
 * ``random``: uniform random settings;
 * ``window``, ``tradeoff``, ``balanced``: :func:`windowfinder.nextruns.suggest` with that aim.
+
+Two more comparisons: NSGA-II run on the noise-free truth (:func:`nsga_evaluations`), and the closed
+loop of :func:`windowfinder.campaign.run_campaign` on the bundled reactor against a one-shot design of
+the same size, through the study-folder API with windowfinder's full defaults (:func:`campaign_once`).
 """
 
 from __future__ import annotations
 
+import re
 import zlib
+from pathlib import Path
 
 import numpy as np
 
-from windowfinder.answers import objectives_of
+from windowfinder.answers import build_window, objectives_of
+from windowfinder.campaign import run_campaign, run_seed
+from windowfinder.cases import case_dir
 from windowfinder.designs import central_composite, make_design, one_factor_at_a_time
 from windowfinder.errors import InputError
 from windowfinder.feasibility import Feasibility
 from windowfinder.hypervolume import hypervolume
 from windowfinder.nextruns import suggest
+from windowfinder.study import Study
 from windowfinder.surrogate import Surrogates
 from windowfinder.tradeoff import find_tradeoff, normalised_igd
 from windowfinder.window import find_window
 
-from .problems import CONFIDENCE, Problem, box_precision, non_dominated, truth_problem
+from .problems import CONFIDENCE, Problem, box_precision, get_problem, non_dominated, truth_problem
 
 N_RESTARTS = 2               # GP optimizer restarts (windowfinder's default is 5), for speed
 TRADEOFF_SEARCH = {"pop_size": 40, "n_gen": 40}   # windowfinder's default is 100 x 150, for speed
@@ -201,3 +210,46 @@ def nsga_evaluations(problem: Problem, ref, target: float, seed: int, pop_size: 
                     return float(evals)
         seen = len(record)
     return np.inf
+
+
+def _study_folder(root: Path, seed: int) -> Path:
+    """A study folder holding the bundled reactor's study file with the given seed."""
+    folder = root / f"seed{seed}"
+    folder.mkdir(parents=True)
+    text = (case_dir("reactor") / "study.toml").read_text()
+    (folder / "study.toml").write_text(re.sub(r"(?m)^seed = \d+", f"seed = {seed}", text))
+    return folder
+
+
+def _judge_study(folder: Path) -> dict:
+    """Window of a study folder (default fit, 95 %), judged against the reactor's truth."""
+    study = Study.load(folder)
+    win = build_window(study.spec, study.fit(), CONFIDENCE)
+    problem = get_problem("reactor")
+    out = {"runs": len(study.runs.frame), "completed": len(study.runs.completed()), "found": win.found,
+           "volume": 0.0, "precision": np.nan, "run_precision": np.nan}
+    if win.found:
+        lo, hi = win.coded_box(study.spec)
+        out.update(volume=float(np.prod(hi - lo)), precision=box_precision(problem.feasible, lo, hi),
+                   run_precision=box_precision(lambda U: problem.run_probability(U) >= CONFIDENCE, lo, hi))
+    return out
+
+
+def campaign_once(root: Path, seed: int, budget: int) -> dict:
+    """windowfinder's closed loop (8 initial, batches of 2, 2 workers, aim window) against a one-shot
+    space-filling design of the same size, both judged by the same window at 95 %."""
+    from windowfinder.cases.reactor.simulator import evaluate
+
+    loop = _study_folder(root / "loop", seed)
+    run_campaign(loop, function="windowfinder.cases.reactor.simulator:evaluate", budget=budget, initial=8,
+                 batch=2, workers=2, aim="window", progress=lambda line: None)
+    shot = _study_folder(root / "oneshot", seed)
+    study = Study.load(shot)
+    frame = study.design("space-filling", runs=budget)
+    for i, row in frame.iterrows():
+        out = evaluate({f: row[f] for f in study.spec.factor_names}, seed=run_seed(seed, row["run"]))
+        for r, v in out.items():
+            frame.at[i, r] = v
+    frame["status"] = "done"
+    study.add_runs(frame)
+    return {"seed": seed, "loop": _judge_study(loop), "oneshot": _judge_study(shot)}
