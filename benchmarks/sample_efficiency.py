@@ -25,7 +25,7 @@ from .problems import ANALYTIC, SIMULATORS, get_problem, reference
 
 RECALL_TARGET, PRECISION_TARGET = 0.5, 0.95
 FULL = {"problems": SIMULATORS + ANALYTIC, "seeds": (1, 2, 3, 4, 5),
-        "budgets": {2: (10, 15, 20, 30), 3: (15, 20, 30)},
+        "budgets": {2: (10, 15, 20, 30, 40), 3: (15, 20, 30, 45)},
         "campaign_seeds": (1, 2, 3, 4, 5), "campaign_budget": 30, "nsga_seeds": (1, 2, 3, 4, 5)}
 QUICK = {"problems": ("gramacy", "bnh"), "seeds": (1,), "budgets": {2: (10, 20), 3: (15, 30)},
          "campaign_seeds": (1,), "campaign_budget": 12, "nsga_seeds": (1,)}
@@ -50,6 +50,17 @@ def _table(header, rows) -> str:
 
 # -- the grid of experiments ----------------------------------------------------------------------
 
+_LIMITS = []
+
+
+def _one_thread() -> None:
+    """Pool-worker start-up: one BLAS thread per worker process (the matrices are small; threads would
+    oversubscribe the cores the other worker needs), whatever imported numpy first."""
+    from threadpoolctl import threadpool_limits
+
+    _LIMITS.append(threadpool_limits(limits=1))
+
+
 def _task(name, strategy, seed, budgets, ref):
     problem = get_problem(name)
     t0 = time.perf_counter()
@@ -69,7 +80,8 @@ def run_grid(cfg, refs) -> tuple[pd.DataFrame, list]:
     order = {name: i for i, name in enumerate(cfg["problems"])}
     jobs.sort(key=lambda j: (order[j[0]], j[1] not in st.SEQUENTIAL))
     rows, camps, left = [], [], {name: sum(j[0] == name for j in jobs) for name in cfg["problems"]}
-    with ProcessPoolExecutor(max_workers=WORKERS) as pool, tempfile.TemporaryDirectory() as tmp:
+    with ProcessPoolExecutor(max_workers=WORKERS, initializer=_one_thread) as pool, \
+            tempfile.TemporaryDirectory() as tmp:
         futures = {pool.submit(st.campaign_once, Path(tmp) / f"s{seed}", seed, cfg["campaign_budget"]):
                    ("campaign", seed) for seed in cfg["campaign_seeds"]}
         futures.update({pool.submit(_task, *j): j for j in jobs})
