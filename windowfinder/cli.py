@@ -328,8 +328,7 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-#: Verbs the demo runs after fit, with their options.
-DEMO_VERBS: list = [["window"], ["tradeoff"], ["suggest", "--count", "4"], ["testplan"], ["report"]]
+
 
 
 def main(argv=None) -> int:

@@ -32,7 +32,11 @@ def simulate_planned(study, case: str, seed: int) -> None:
     study.record_results(pd.DataFrame(rows))
 
 
-def step(title: str, argv: list[str]) -> None:
+#: Verbs run after fit, with their options.
+AFTER_FIT = (["window"], ["tradeoff"], ["suggest", "--count", "4"], ["testplan"], ["report"])
+
+
+def step(argv: list[str]) -> None:
     print(f"\n$ windowfinder {' '.join(argv)}", flush=True)
     code = cli.main(argv)
     if code != 0:
@@ -51,9 +55,9 @@ def main(argv=None) -> int:
             print(f"{folder} exists and is not a demo folder; choose another", file=sys.stderr)
             return 2
         shutil.rmtree(folder)
-    step("new", ["new", str(folder), "--example", args.case])
+    step(["new", str(folder), "--example", args.case])
     (folder / ".windowfinder-demo").write_text("created by make demo; safe to delete\n")
-    step("design", ["design", str(folder), "--method", "space-filling", "--runs", str(args.runs),
+    step(["design", str(folder), "--method", "space-filling", "--runs", str(args.runs),
                     "--centre", "2"])
     from .study import Study
 
@@ -61,15 +65,15 @@ def main(argv=None) -> int:
     print(f"\n(simulating the {len(study.runs.planned())} planned runs with the '{args.case}' simulator "
           "in place of the lab)")
     simulate_planned(study, args.case, study.spec.seed)
-    step("check", ["check", str(folder)])
-    step("fit", ["fit", str(folder)])
+    step(["check", str(folder)])
+    step(["fit", str(folder)])
     import json
 
-    for verb in cli.DEMO_VERBS:
+    for verb in AFTER_FIT:
         if verb[0] == "testplan" and not json.loads((folder / "out" / "window.json").read_text())["found"]:
             print("\n(no window at this confidence, so no verification plan; see the window step)")
             continue
-        step(verb[0], [verb[0], str(folder), *verb[1:]])
+        step([verb[0], str(folder), *verb[1:]])
     summary(folder)
     return 0
 

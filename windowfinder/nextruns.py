@@ -22,7 +22,7 @@ Giannakoglou & Naujoks 2006, "Single- and multiobjective evolutionary optimizati
 Gaussian random field metamodels", IEEE Trans. Evol. Comput. 10(4)) in its Monte Carlo form (Daulton,
 Balandat & Bakshy 2020, qEHVI, NeurIPS), times the joint probability of meeting every limit (the usual
 weighting of an improvement by the probability of feasibility; Schonlau, Welch & Jones 1998,
-"Global versus local search in constrained optimization of computer models", IMS Lecture Notes 34).
+"Global versus local search in constrained optimization of computer models", IMS Monograph Series vol. 34).
 Draws of each goal's process mean are mapped to natural units and to minimisation form (maximize:
 ``-Y``; minimize: ``Y``; target: ``|Y - target|``). The current front is the predicted medians at the
 completed runs whose joint probability reaches the confidence (predicted, not observed, values:
