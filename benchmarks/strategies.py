@@ -150,7 +150,7 @@ def _propose(problem: Problem, aim: str, sur, X, q: int, seed: int) -> np.ndarra
     if aim == "random" or sur is None:
         return rng.random((q, problem.d))
     return suggest(sur, problem.limits, problem.goals, X, q, aim=aim, confidence=CONFIDENCE,
-                   seed=seed + len(X)).X
+                   seed=seed + len(X), tolerance=problem.spec.tolerances_coded).X
 
 
 def sequential(problem: Problem, ref, aim: str, budgets, seed: int) -> list[dict]:

@@ -3,19 +3,25 @@
 Every run is expensive, so each proposed setting is chosen by a criterion, on coded settings in
 ``[0, 1]^d``:
 
-**Window** (sharpen the window's edge). A setting belongs to the window when a new run there meets
-every limit with probability at least the confidence ``c``. With the true process means ``f_k(x)`` known
-this is ``P_works(x) * prod_k P(lo_k <= f_k(x) + noise <= hi_k) >= c``. The models only know ``f_k`` up
-to their posterior ``N(mu_k, s_k^2)`` (model spread, without run-to-run noise), so the probability that
-``x`` truly belongs to the window is ``pi(x) = P_f(... >= c)``, estimated from ``S`` = 128 posterior
-draws with common random numbers. The score is the misclassification probability ``min(pi, 1 - pi)``:
-the ambiguity of the level-set estimation of Gotovos, Casati, Hitz & Krause (2013, "Active learning for
-level set estimation", IJCAI) and the straddle idea of Bryan, Schneider, Nichol, Miller, Genovese &
-Wasserman (2005, "Active learning for identifying function threshold boundaries", NIPS 18). Chosen over
-an expected reduction of the uncertain volume by fantasies as cheap enough for thousands of candidates
-per pick, and over ``min(p, 1 - p)`` of the usual joint probability ``p`` (run-to-run noise included)
-because that stays high along the edge however many runs sit there: a run reduces only the model's
-own doubt, and ``pi`` falls to 0 or 1 as that shrinks.
+**Window** (grow and sharpen the window). A setting belongs to the window when a new run there meets
+every limit with probability at least the confidence ``c``, and the window is the largest box of such
+settings (:mod:`windowfinder.window`). With exact GP models the criterion is the expected growth of that
+window from one more run, looked ahead on the models' posterior (:mod:`windowfinder.windowgain`):
+window runs alternate between pushing the current window's faces (expected advance of each face times
+its area) and exploring (expected growth of the confirmed volume anywhere, which may seed a larger
+window elsewhere); before any window exists every window run explores. Measured against the earlier
+edge criterion below on the benchmark problems (docs/benchmarks.md), pushing faces alone stalls on a
+small first window, exploring alone confirms volume that no box can use; alternating did best.
+
+Where the look-ahead is unavailable (sparse or quadratic models) or expects no growth anywhere, the
+edge criterion is used: with the true process means ``f_k(x)`` known, ``x`` is in the window when
+``P_works(x) * prod_k P(lo_k <= f_k(x) + noise <= hi_k) >= c``; the models know ``f_k`` up to their
+posterior ``N(mu_k, s_k^2)``, so the probability that ``x`` truly belongs to the window is
+``pi(x) = P_f(... >= c)``, estimated from ``S`` = 128 posterior draws with common random numbers, and
+the score is the misclassification probability ``min(pi, 1 - pi)``: the ambiguity of the level-set
+estimation of Gotovos, Casati, Hitz & Krause (2013, "Active learning for level set estimation", IJCAI)
+and the straddle idea of Bryan, Schneider, Nichol, Miller, Genovese & Wasserman (2005, "Active learning
+for identifying function threshold boundaries", NIPS 18).
 
 **Trade-off** (improve the constrained front). Expected hypervolume improvement (Emmerich,
 Giannakoglou & Naujoks 2006, "Single- and multiobjective evolutionary optimization assisted by
@@ -66,6 +72,8 @@ from .errors import InputError
 from .feasibility import Feasibility, limit_probability
 from .hypervolume import expected_improvement, hypervolume
 from .surrogate import Surrogates
+from .window import find_window
+from .windowgain import MARGIN, WindowGain
 
 AIMS = ("balanced", "window", "tradeoff")
 SENSES = ("maximize", "minimize", "target")
@@ -89,8 +97,9 @@ class Suggestions:
     aim : list of str
         ``"window"`` or ``"tradeoff"`` per run: the criterion that chose it.
     gain : ndarray (q,)
-        Score of each pick when chosen: misclassification probability (window) or probability-weighted
-        expected hypervolume improvement in goal units (trade-off).
+        Score of each pick when chosen: expected window growth in coded volume (share of the factor
+        space; misclassification probability where the edge criterion was used) or
+        probability-weighted expected hypervolume improvement in goal units (trade-off).
     p_joint : ndarray (q,)
         Current joint probability that a run there meets every limit (and works).
     predicted : dict[str, ndarray (q,)]
@@ -172,6 +181,7 @@ class Acquisition:
             raise InputError(f"limit or goal on '{missing[0]}': no fitted model for this response; fit it first")
         self.models = {n: surrogates.models[n] for n in dict.fromkeys(used)}
         self.X_runs = np.asarray(X_runs, dtype=float)
+        self.gain_ = self.explore_ = None
         self._set_feasibility()
         names = list(self.models)
         s_win, s_goal = np.random.SeedSequence(seed).spawn(2)
@@ -212,6 +222,12 @@ class Acquisition:
             y = model.transform_.inverse(z)
             cols.append(-y if sense == "maximize" else np.abs(y - target) if sense == "target" else y)
         return np.stack(cols, axis=-1)
+
+    def window_gain(self, X, explore=False):
+        """Expected window growth from one run at each ``X`` (:mod:`.windowgain`); ``explore``: the
+        confirmed volume's growth anywhere instead of the current window's."""
+        gain = self.explore_ if explore else self.gain_
+        return gain(self.models, self.feas_.limits_, self.p_works, X)
 
     def window(self, X):
         """Misclassification probability ``min(pi, 1 - pi)`` and ``pi`` = P(x truly in the window)."""
@@ -344,8 +360,39 @@ def _check(surrogates, goals, X_runs, count, aim, confidence):
     return X_runs, d
 
 
+def _scorer(state, kind, avoid):
+    """Score function of one pick: ``kind`` in gain | window | tradeoff; likely failures score -1."""
+    def score_fn(X):
+        s = (state.window_gain(X) if kind == "gain" else state.window_gain(X, True) if kind == "explore"
+             else state.window(X)[0] if kind == "window" else state.tradeoff(X))
+        return np.where(state.p_works(X) >= MIN_WORKS, s, -1.0) if avoid else s
+    return score_fn
+
+
+def _gain_setup(acq, base, d, tolerance, seed, snap):
+    """Window candidates for the expected-window-growth criterion, or None where it does not apply.
+
+    It applies when every limited response has an exact GP model (posterior cross-covariances). The
+    current window (:func:`windowfinder.window.find_window`) fixes the faces to push; half the
+    candidates are drawn around it (the window widened by its own width on every side).
+    """
+    exact = all(getattr(acq.models[n], "sparse_", True) is None for n, _, _ in acq.feas_.limits_)
+    if not exact:
+        return None
+    w = find_window(acq.feas_.joint, d, acq.confidence, tolerance=tolerance, seed=seed)
+    box = (w.lower, w.upper) if w.found else None
+    acq.gain_ = WindowGain(d, acq.confidence, box, tolerance, seed=seed)
+    acq.explore_ = WindowGain(d, acq.confidence, None, seed=seed)
+    if box is None:
+        return base
+    pad = np.maximum(w.upper - w.lower, 2 * MARGIN) + (0.0 if tolerance is None else np.asarray(tolerance))
+    lo, hi = np.clip(w.lower - pad, 0.0, 1.0), np.clip(w.upper + pad, 0.0, 1.0)
+    near = _on_grid(snap, lo + (hi - lo) * sobol(d, len(base) // 2, seed + 2))
+    return np.vstack([near, base[: len(base) // 4]])
+
+
 def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence=0.95, seed=0,
-            snap=None, n_candidates=None, min_distance=None) -> Suggestions:
+            snap=None, n_candidates=None, min_distance=None, tolerance=None) -> Suggestions:
     """Propose ``count`` next runs (see the module docstring for the criteria).
 
     Parameters
@@ -369,6 +416,8 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
         Sobol candidates (default 1024 for d <= 2, 2048 for d <= 4, else 4096).
     min_distance : float or None
         Default ``0.05 * sqrt(d)``.
+    tolerance : ndarray (d,) or None
+        Coded factor tolerances, for the current window that the window criterion grows.
 
     Returns
     -------
@@ -390,14 +439,18 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     found = bool(np.any(acq.p_joint(base) >= confidence))
     aims = _aims(aim, count, found, bool(limits), bool(goals))
     rng = np.random.default_rng([seed, 1])
+    base_window = _gain_setup(acq, base, d, tolerance, seed, snap) if "window" in aims else None
 
     picks, gains, replicate, state = [], [], [], acq
     for a in aims:
-        def score_fn(X, state=state, a=a):
-            s = state.window(X)[0] if a == "window" else state.tradeoff(X)
-            return np.where(state.p_works(X) >= MIN_WORKS, s, -1.0) if avoid else s
-        x, g, rep = _pick(score_fn, base if a == "window" else base_tradeoff, X_runs, picks, min_distance,
-                          snap, rng)
+        kind = "gain" if a == "window" and base_window is not None else a
+        if kind == "gain" and acq.gain_.area_ is not None and (len(X_runs) + aims[:len(picks)].count(a)) % 2:
+            kind = "explore"       # every other window run: confirmed volume anywhere
+        cands = (base_tradeoff if a == "tradeoff" else base if kind in ("window", "explore")
+                 else base_window)
+        x, g, rep = _pick(_scorer(state, kind, avoid), cands, X_runs, picks, min_distance, snap, rng)
+        if kind in ("gain", "explore") and not g > 0:   # no growth expected anywhere: sharpen the edge instead
+            x, g, rep = _pick(_scorer(state, "window", avoid), base, X_runs, picks, min_distance, snap, rng)
         picks.append(np.asarray(x, dtype=float))
         gains.append(float(g))
         replicate.append(rep)
@@ -407,7 +460,7 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     predicted = {n: m.transform_.inverse(np.asarray(m.predict(X, return_std=False)))
                  for n, m in surrogates.models.items()}
     n_win = aims.count("window")
-    msg = (f"{count} run{'s' if count > 1 else ''} proposed: {n_win} to sharpen the window edge, "
+    msg = (f"{count} run{'s' if count > 1 else ''} proposed: {n_win} to grow or sharpen the window, "
            f"{count - n_win} to improve the trade-off")
     if any(replicate):
         rows = ", ".join(str(i + 1) for i, r in enumerate(replicate) if r)

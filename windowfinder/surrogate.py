@@ -236,6 +236,18 @@ class GPModel(_ResponseModel):
             var = var + self.noise_std_ ** 2
         return mean, np.sqrt(var)
 
+    def cross_covariance(self, A, B):
+        """Posterior covariance of the latent mean between ``A`` (m, d) and ``B`` (k, d), (m, k).
+
+        ``k(A, B) - k(A, X) K^-1 k(X, B)`` with the fitted signal kernel (Rasmussen & Williams 2006,
+        eq. 2.24), latent units, run-to-run noise excluded. None for the sparse approximation.
+        """
+        if self.sparse_ is not None:
+            return None
+        Va, Vb = (solve_triangular(self.gp_.L_, self._signal(self.X_train_, P), lower=True,
+                                   check_finite=False) for P in (A, B))
+        return (self._signal(A, B) - Va.T @ Vb) * self.y_scale_ ** 2
+
     def interval_quantile(self, level, loo=False):
         """Standard normal quantile (the GP predictive distribution is Gaussian)."""
         return float(stats.norm.ppf(0.5 + level / 2.0))
