@@ -42,13 +42,13 @@ hyperparameters) and the candidates are scored again; a feasible pick joins the 
 model is left unconditioned; settings where the process is predicted to fail (``P(works) < 0.5``) are
 not proposed while any other candidate is.
 
-**Candidates**: a scrambled Sobol set, Gaussian perturbations around the best few, a short
-Nelder-Mead polish of the best (scipy), each snapped to the factor steps. A setting closer than
-``min_distance`` to a completed run or an earlier pick is refused; the default ``0.05 * sqrt(d)`` is
-the finest length scale the models may fit (0.05 coded units per factor, see
-:mod:`windowfinder.surrogate`) taken in every factor at once: closer settings are practically the
-same run for the model (common practice, no source). A completed run may be repeated (``replicate``)
-only when its score beats the best new setting by a factor of 2 (common practice, no source).
+**Candidates** (:mod:`windowfinder.candidates`): a scrambled Sobol set (for the window aim, half of it
+around the current window), perturbations around the best few and a short polish, snapped to the
+factor steps. A setting closer than ``min_distance`` to a completed run or an earlier pick is refused;
+the default ``0.05 * sqrt(d)`` is the finest length scale the models may fit (0.05 coded units per
+factor, see :mod:`windowfinder.surrogate`) taken in every factor at once: closer settings are
+practically the same run for the model (common practice, no source). A completed run is repeated only
+when its score beats the best new setting by a factor of 2 (common practice, no source).
 
 **Stopping advice**: the uncertain share is the fraction of the space (Sobol candidates) whose window
 class is still undecided at the confidence (``1 - c < pi < c``); the relative gain is the best
@@ -64,9 +64,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import minimize
-from scipy.spatial.distance import cdist
 
+from .candidates import on_grid, pick
 from .designs import sobol
 from .errors import InputError
 from .feasibility import Feasibility, limit_probability
@@ -80,9 +79,7 @@ SENSES = ("maximize", "minimize", "target")
 N_SAMPLES = 128              # posterior draws per criterion (common random numbers)
 N_SAMPLES_MANY_GOALS = 32    # three or more goals: pymoo hypervolume per draw
 MAX_CANDIDATES_MANY_GOALS = 256
-N_CENTRES, N_LOCAL, LOCAL_STEP = 4, 32, 0.05   # local perturbations around the best candidates
 MIN_WORKS = 0.5
-REPLICATE_MARGIN = 2.0
 PAY_UNCERTAIN, PAY_GAIN = 0.05, 0.01
 
 
@@ -258,63 +255,6 @@ class Acquisition:
         return new
 
 
-def _on_grid(snap, U):
-    """Clip to the unit cube, snap to the steps, drop rows the snap moved outside."""
-    U = np.clip(np.asarray(U, dtype=float), 0.0, 1.0)
-    V = np.asarray(snap(U), dtype=float).reshape(U.shape)
-    inside = np.all((V >= -1e-12) & (V <= 1.0 + 1e-12), axis=1)
-    return np.clip(V[inside], 0.0, 1.0)
-
-
-def _distance(C, blocked):
-    return np.full(len(C), np.inf) if len(blocked) == 0 else cdist(C, blocked).min(axis=1)
-
-
-def _polish(score_fn, x0, s0, snap, blocked, min_distance):
-    """Short bounded Nelder-Mead on the negative score; keeps the snapped result only if it is better."""
-    d = len(x0)
-    simplex = np.clip(np.vstack([x0, x0 + 0.5 * LOCAL_STEP * np.eye(d)]), 0.0, 1.0)
-    res = minimize(lambda u: -score_fn(np.clip(u, 0.0, 1.0)[None])[0], x0, method="Nelder-Mead",
-                   bounds=[(0.0, 1.0)] * d,
-                   options={"maxfev": 20 + 20 * d, "xatol": 1e-3, "fatol": 1e-9, "initial_simplex": simplex})
-    xp = _on_grid(snap, res.x[None])
-    if len(xp) and _distance(xp, blocked)[0] >= min_distance:
-        sp = score_fn(xp)[0]
-        if sp > s0:
-            return xp[0], sp
-    return x0, s0
-
-
-def _pick(score_fn, base, X_runs, picks, min_distance, snap, rng):
-    """One pick: best free candidate (polished), or a replicate of a completed run if far better."""
-    s = score_fn(base)
-    centres = base[np.argsort(-s, kind="stable")[:N_CENTRES]]
-    d = base.shape[1]
-    jitter = LOCAL_STEP * rng.standard_normal((len(centres), N_LOCAL, d))
-    local = _on_grid(snap, (centres[:, None, :] + jitter).reshape(-1, d))
-    C, S = np.vstack([base, local]), np.concatenate([s, score_fn(local)])
-    blocked = np.vstack([X_runs, *picks]) if picks else X_runs
-    dist = _distance(C, blocked)
-    free = dist >= min_distance
-    x, sx = None, -np.inf
-    if free.any():
-        best = np.max(S[free])
-        ties = free & (S >= best - 1e-12 * max(1.0, abs(best)))
-        i = np.flatnonzero(ties)[np.argmax(dist[ties])]   # equal scores: farthest from all runs
-        x, sx = _polish(score_fn, C[i], S[i], snap, blocked, min_distance)
-    runs = np.unique(X_runs, axis=0) if len(X_runs) else X_runs
-    if picks and len(runs):
-        runs = runs[_distance(runs, np.vstack(picks)) >= min_distance]
-    if len(runs):
-        sr = score_fn(runs)
-        j = int(np.argmax(sr))
-        if x is None or (sr[j] > 0 and sr[j] > REPLICATE_MARGIN * max(sx, 0.0)):
-            return runs[j], sr[j], True
-    if x is None:      # nothing free and nothing to repeat: the best candidate regardless of distance
-        return C[np.argmax(S)], np.max(S), True
-    return x, sx, False
-
-
 def _aims(aim, count, found, has_limits, has_goals):
     if not has_goals:
         return ["window"] * count
@@ -387,7 +327,7 @@ def _gain_setup(acq, base, d, tolerance, seed, snap):
         return base
     pad = np.maximum(w.upper - w.lower, 2 * MARGIN) + (0.0 if tolerance is None else np.asarray(tolerance))
     lo, hi = np.clip(w.lower - pad, 0.0, 1.0), np.clip(w.upper + pad, 0.0, 1.0)
-    near = _on_grid(snap, lo + (hi - lo) * sobol(d, len(base) // 2, seed + 2))
+    near = on_grid(snap, lo + (hi - lo) * sobol(d, len(base) // 2, seed + 2))
     return np.vstack([near, base[: len(base) // 4]])
 
 
@@ -431,7 +371,7 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     snap = snap if snap is not None else (lambda U: U)
     n_candidates = n_candidates or (1024 if d <= 2 else 2048 if d <= 4 else 4096)
     min_distance = 0.05 * np.sqrt(d) if min_distance is None else float(min_distance)
-    base = _on_grid(snap, sobol(d, n_candidates, seed))
+    base = on_grid(snap, sobol(d, n_candidates, seed))
     if len(base) == 0:
         raise InputError("suggest: no setting survives rounding to the factor steps; check each step")
     base_tradeoff = base if len(goals) < 3 else base[:MAX_CANDIDATES_MANY_GOALS]
@@ -448,9 +388,9 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
             kind = "explore"       # every other window run: confirmed volume anywhere
         cands = (base_tradeoff if a == "tradeoff" else base if kind in ("window", "explore")
                  else base_window)
-        x, g, rep = _pick(_scorer(state, kind, avoid), cands, X_runs, picks, min_distance, snap, rng)
+        x, g, rep = pick(_scorer(state, kind, avoid), cands, X_runs, picks, min_distance, snap, rng)
         if kind in ("gain", "explore") and not g > 0:   # no growth expected anywhere: sharpen the edge instead
-            x, g, rep = _pick(_scorer(state, "window", avoid), base, X_runs, picks, min_distance, snap, rng)
+            x, g, rep = pick(_scorer(state, "window", avoid), base, X_runs, picks, min_distance, snap, rng)
         picks.append(np.asarray(x, dtype=float))
         gains.append(float(g))
         replicate.append(rep)
