@@ -106,7 +106,8 @@ class MarginalLikelihood:
         Added to the diagonal (scikit-learn's ``alpha``).
     """
 
-    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10):
+    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None):
+        self.noise_prior = noise_prior
         self.X = np.asarray(X, dtype=float)
         self.y = np.asarray(y, dtype=float).ravel()
         self.nu = nu
@@ -148,6 +149,10 @@ class MarginalLikelihood:
         if self.trend:
             grad[1 + d] = 0.5 * c_t * np.vdot(W, self.P)
         grad[-1] = 0.5 * noise * np.trace(W)
+        if self.noise_prior is not None:
+            m, sd = self.noise_prior
+            lml -= 0.5 * ((theta[-1] - m) / sd) ** 2
+            grad[-1] -= (theta[-1] - m) / sd ** 2
         return lml, grad
 
 
@@ -159,8 +164,8 @@ class FastOptimizer:
     once the fit is done, so a fitted model does not keep a second copy.
     """
 
-    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10):
-        self.likelihood = MarginalLikelihood(X, y, nu, trend, jitter)
+    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None):
+        self.likelihood = MarginalLikelihood(X, y, nu, trend, jitter, noise_prior)
         self.n_evaluations = 0
 
     def _negative(self, theta):
