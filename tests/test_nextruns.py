@@ -284,3 +284,17 @@ def test_picks_avoid_predicted_failure_region():
     s = suggest(Surrogates({"b": model}, StubFailure()), [], [("b", "maximize", None)], X, 2, n_candidates=128)
     assert np.all(s.X[:, 0] <= 0.5)
     assert "avoided" in s.message
+
+
+def test_window_rules_contract():
+    # contract of suggest (docstring), no external source: each rule proposes valid runs; the edge rule
+    # reports misclassification probabilities (at most 0.5), an unknown rule is refused
+    X = sobol(2, 10, 3)
+    S = Surrogates.fit_arrays(X, {"a": quadratic_response(X, np.array([0.4, 0.5]))}, n_restarts=0)
+    for rule in ("grow", "faces", "edge"):
+        s = suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", n_candidates=128, window_rule=rule)
+        assert s.X.shape == (2, 2) and np.all((s.X >= 0) & (s.X <= 1))
+        if rule == "edge":
+            assert np.all(s.gain <= 0.5)
+    with pytest.raises(InputError, match="window rule"):
+        suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", window_rule="sideways")

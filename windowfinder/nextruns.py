@@ -75,6 +75,7 @@ from .window import find_window
 from .windowgain import MARGIN, WindowGain
 
 AIMS = ("balanced", "window", "tradeoff")
+WINDOW_RULES = ("grow", "faces", "edge")
 SENSES = ("maximize", "minimize", "target")
 N_SAMPLES = 128              # posterior draws per criterion (common random numbers)
 N_SAMPLES_MANY_GOALS = 32    # three or more goals: pymoo hypervolume per draw
@@ -332,7 +333,8 @@ def _gain_setup(acq, base, d, tolerance, seed, snap):
 
 
 def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence=0.95, seed=0,
-            snap=None, n_candidates=None, min_distance=None, tolerance=None) -> Suggestions:
+            snap=None, n_candidates=None, min_distance=None, tolerance=None,
+            window_rule="grow") -> Suggestions:
     """Propose ``count`` next runs (see the module docstring for the criteria).
 
     Parameters
@@ -358,6 +360,10 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
         Default ``0.05 * sqrt(d)``.
     tolerance : ndarray (d,) or None
         Coded factor tolerances, for the current window that the window criterion grows.
+    window_rule : {"grow", "faces", "edge"}
+        Window runs: ``grow`` (default) alternates pushing the current window's faces and growing the
+        confirmed volume anywhere; ``faces`` only pushes faces; ``edge`` uses the misclassification
+        criterion throughout (the comparison of the three is in docs/benchmarks.md).
 
     Returns
     -------
@@ -367,6 +373,8 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     if not limits and not goals:
         raise InputError("study.toml [[response]]: no limits and no goals; give a response a min/max or a goal")
     X_runs, d = _check(surrogates, goals, X_runs, count, aim, confidence)
+    if window_rule not in WINDOW_RULES:
+        raise InputError(f"suggest: window rule '{window_rule}' is unknown; use one of {', '.join(WINDOW_RULES)}")
     acq = Acquisition(surrogates, limits, goals, X_runs, confidence, seed)
     snap = snap if snap is not None else (lambda U: U)
     n_candidates = n_candidates or (1024 if d <= 2 else 2048 if d <= 4 else 4096)
@@ -379,12 +387,14 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     found = bool(np.any(acq.p_joint(base) >= confidence))
     aims = _aims(aim, count, found, bool(limits), bool(goals))
     rng = np.random.default_rng([seed, 1])
-    base_window = _gain_setup(acq, base, d, tolerance, seed, snap) if "window" in aims else None
+    use_gain = "window" in aims and window_rule != "edge"
+    base_window = _gain_setup(acq, base, d, tolerance, seed, snap) if use_gain else None
 
     picks, gains, replicate, state = [], [], [], acq
     for a in aims:
         kind = "gain" if a == "window" and base_window is not None else a
-        if kind == "gain" and acq.gain_.area_ is not None and (len(X_runs) + aims[:len(picks)].count(a)) % 2:
+        alternate = window_rule == "grow" and (len(X_runs) + aims[:len(picks)].count(a)) % 2
+        if kind == "gain" and acq.gain_.area_ is not None and alternate:
             kind = "explore"       # every other window run: confirmed volume anywhere
         cands = (base_tradeoff if a == "tradeoff" else base if kind in ("window", "explore")
                  else base_window)
