@@ -15,7 +15,7 @@ from threadpoolctl import threadpool_limits
 
 from windowfinder.likelihood import SUPPORTED_NU, MarginalLikelihood, SignalKernel
 from windowfinder.sparse import FITC, kcenter
-from windowfinder.surrogate import JITTER, MAX_EXACT_RUNS, NOISE_PRIOR, FailureModel, GPModel
+from windowfinder.surrogate import JITTER, LENGTH_PRIOR, MAX_EXACT_RUNS, NOISE_PRIOR, FailureModel, GPModel
 
 # Hartmann 3-d test function (Hartmann 1973; Dixon & Szego 1978, "The global optimisation problem: an
 # introduction", in Towards Global Optimisation 2), constants as tabulated in the Surjanovic & Bingham
@@ -198,33 +198,43 @@ def test_likelihood_and_gradient_equal_sklearn(nu, trend):
         np.testing.assert_allclose(grad, ref_grad, rtol=1e-6, atol=1e-6)
 
 
-def test_noise_prior_term_and_gradient():
-    # log-normal prior on the noise variance: log posterior = log likelihood - (theta_noise - m)^2 / (2 sd^2)
-    # (closed form); gradient against central finite differences
+def test_prior_terms_and_gradient():
+    # log-normal prior on the noise variance: log posterior = log likelihood - (theta_noise - m)^2 / (2 sd^2),
+    # Gamma on the length scales (closed forms); gradients against central finite differences
     rng = np.random.default_rng(4)
     X, y = rng.random((25, 2)), rng.standard_normal(25)
     plain, prior = MarginalLikelihood(X, y), MarginalLikelihood(X, y, noise_prior=NOISE_PRIOR)
-    theta = np.array([0.3, -1.0, -0.5, -2.0, -3.0])
+    theta, h = np.array([0.3, -1.0, -0.5, -2.0, -3.0]), 1e-6
     m, sd = NOISE_PRIOR
     assert prior(theta)[0] == pytest.approx(plain(theta)[0] - 0.5 * ((theta[-1] - m) / sd) ** 2, rel=1e-12)
-    h, grad = 1e-6, prior(theta)[1]
+    # Gamma(a, b) on each length scale: + sum((a - 1) log l - b l)
+    a, b = LENGTH_PRIOR
+    both = MarginalLikelihood(X, y, noise_prior=NOISE_PRIOR, length_prior=LENGTH_PRIOR)
+    ls = np.exp(theta[1:3])
+    assert both(theta)[0] == pytest.approx(prior(theta)[0] + np.sum((a - 1) * np.log(ls) - b * ls), rel=1e-12)
+    fd = [(both(theta + h * e)[0] - both(theta - h * e)[0]) / (2 * h) for e in np.eye(len(theta))]
+    np.testing.assert_allclose(both(theta)[1], fd, rtol=1e-5, atol=1e-6)
+    grad = prior(theta)[1]
     fd = [(prior(theta + h * e)[0] - prior(theta - h * e)[0]) / (2 * h) for e in np.eye(len(theta))]
     np.testing.assert_allclose(grad, fd, rtol=1e-5, atol=1e-6)
 
 
 @pytest.mark.filterwarnings("ignore::sklearn.exceptions.ConvergenceWarning")
 def test_fit_reaches_sklearn_optimum():
-    # same kernel, restarts and seed with scikit-learn's own likelihood (plus the same log-normal prior
-    # on the log noise variance, added here by hand) minimised by scipy's L-BFGS-B, scikit-learn's
-    # default optimizer: the same best log posterior (R&W 2006, §5.2)
+    # same kernel, restarts and seed with scikit-learn's own likelihood (plus the same priors, added
+    # here by hand: log-normal on the noise variance, Gamma on the length scales) minimised by scipy's
+    # L-BFGS-B, scikit-learn's default optimizer: the same best log posterior (R&W 2006, §5.2)
     m, sd = NOISE_PRIOR
+    a, b = LENGTH_PRIOR
 
     def sklearn_map(obj_func, theta0, bounds):
         def fun(theta):
             f, g = obj_func(theta)   # negative log likelihood and its gradient
             g = np.array(g, dtype=float)
             g[-1] += (theta[-1] - m) / sd ** 2
-            return f + 0.5 * ((theta[-1] - m) / sd) ** 2, g
+            ls = np.exp(theta[1:4])  # three factors
+            g[1:4] -= (a - 1.0) - b * ls
+            return f + 0.5 * ((theta[-1] - m) / sd) ** 2 - np.sum((a - 1.0) * theta[1:4] - b * ls), g
         res = minimize(fun, theta0, jac=True, method="L-BFGS-B", bounds=bounds)
         return res.x, res.fun
 

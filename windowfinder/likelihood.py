@@ -104,10 +104,16 @@ class MarginalLikelihood:
     trend : bool
     jitter : float
         Added to the diagonal (scikit-learn's ``alpha``).
+    noise_prior : (float, float) or None
+        Mean and sd of a normal prior on ``log s2`` (log-normal on the noise variance).
+    length_prior : (float, float) or None
+        Shape ``a`` and rate ``b`` of a Gamma prior on every length scale, density ``l^(a-1) e^(-b l)``.
+        With either prior the value returned is the log posterior up to a constant (type-II MAP).
     """
 
-    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None):
+    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None, length_prior=None):
         self.noise_prior = noise_prior
+        self.length_prior = length_prior
         self.X = np.asarray(X, dtype=float)
         self.y = np.asarray(y, dtype=float).ravel()
         self.nu = nu
@@ -149,6 +155,10 @@ class MarginalLikelihood:
         if self.trend:
             grad[1 + d] = 0.5 * c_t * np.vdot(W, self.P)
         grad[-1] = 0.5 * noise * np.trace(W)
+        if self.length_prior is not None:   # Gamma(a, b) on each length scale
+            a_, b_ = self.length_prior
+            lml += float(np.sum((a_ - 1.0) * np.log(ls) - b_ * ls))
+            grad[1:1 + d] += (a_ - 1.0) - b_ * ls
         if self.noise_prior is not None:
             m, sd = self.noise_prior
             lml -= 0.5 * ((theta[-1] - m) / sd) ** 2
@@ -164,8 +174,8 @@ class FastOptimizer:
     once the fit is done, so a fitted model does not keep a second copy.
     """
 
-    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None):
-        self.likelihood = MarginalLikelihood(X, y, nu, trend, jitter, noise_prior)
+    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None, length_prior=None):
+        self.likelihood = MarginalLikelihood(X, y, nu, trend, jitter, noise_prior, length_prior)
         self.n_evaluations = 0
 
     def _negative(self, theta):

@@ -40,6 +40,12 @@ TREND_BOUNDS = (1e-4, 1e2)  # prior variance of the quadratic trend, standardise
 # lower bound in most 30-run fits of the bundled noisy cases (true noise 5-10 % of the spread) and
 # windows were over-claimed for new runs (docs/benchmarks.md). Numbers: common practice, no source.
 NOISE_PRIOR = (float(np.log(1e-2)), float(np.log(10.0)))   # mean and sd of log(noise variance)
+# Gamma(3, 6) prior on every length scale (coded units; mode 1/3, mean 1/2): the default of BoTorch's
+# SingleTaskGP before 2024 (Balandat et al. 2020, BoTorch, NeurIPS; values from memory). Without it,
+# maximum likelihood on 10-20 runs in three factors often put two length scales at the upper bound
+# (factor "inactive") and the models were confidently wrong between the runs: claimed windows on
+# C2-DTLZ2 were 50-85 % truly feasible (docs/benchmarks.md).
+LENGTH_PRIOR = (3.0, 6.0)
 JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (scikit-learn default)
 # Many runs (windowfinder.sparse). Above SUBSET_RUNS the optimizer restarts run on that many
 # space-filling runs; above MAX_EXACT_RUNS the model is the FITC approximation with them as inducing
@@ -144,7 +150,7 @@ class GPModel(_ResponseModel):
     def _optimise(self, X, ys, kernel, n_restarts):
         """scikit-learn GP on ``(X, ys)`` with hyperparameters by maximum marginal likelihood."""
         fast = self.nu in SUPPORTED_NU
-        opt = FastOptimizer(X, ys, self.nu, self.trend == "quadratic", JITTER, NOISE_PRIOR) if fast else "fmin_l_bfgs_b"
+        opt = FastOptimizer(X, ys, self.nu, self.trend == "quadratic", JITTER, NOISE_PRIOR, LENGTH_PRIOR) if fast else "fmin_l_bfgs_b"
         gp = GaussianProcessRegressor(kernel=kernel, alpha=JITTER, normalize_y=False, optimizer=opt,
                                       n_restarts_optimizer=n_restarts, random_state=self.random_state)
         with warnings.catch_warnings():
