@@ -151,7 +151,7 @@ def _propose(problem: Problem, aim: str, sur, X, q: int, seed: int) -> np.ndarra
         return rng.random((q, problem.d))
     aim, _, rule = aim.partition(":")      # "window:edge" - aim window with another window rule
     return suggest(sur, problem.limits, problem.goals, X, q, aim=aim, confidence=CONFIDENCE,
-                   seed=seed + len(X), tolerance=problem.spec.tolerances_coded, window_rule=rule or "grow").X
+                   seed=seed + len(X), tolerance=problem.spec.tolerances_coded, window_rule=rule or "faces").X
 
 
 def sequential(problem: Problem, ref, aim: str, budgets, seed: int) -> list[dict]:

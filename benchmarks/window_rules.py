@@ -2,8 +2,8 @@
 
 The same sequential loop as the sample-efficiency section (initial Latin hypercube, batches of 2, the
 same judge) with aim window and each rule of :func:`windowfinder.nextruns.suggest`: ``edge`` (the
-misclassification criterion on the joint feasibility), ``faces`` (expected advance of the current
-window's faces only) and ``grow`` (the default: faces and confirmed-volume growth anywhere, alternately),
+misclassification criterion on the joint feasibility), ``faces`` (the default: expected advance of the
+current window's faces) and ``grow`` (faces and confirmed-volume growth anywhere, alternately),
 against the space-filling one-shot design of the same size. ``main(quick)`` returns the Markdown.
 """
 
@@ -22,9 +22,9 @@ from .sample_efficiency import WORKERS, _fmt, _one_thread, _table, say
 FULL = {"problems": ("reactor", "tempering", "gramacy", "c2dtlz2"), "seeds": (1, 2, 3, 4, 5),
         "budgets": {2: (10, 20, 30), 3: (15, 20, 30)}}
 QUICK = {"problems": ("gramacy",), "seeds": (1,), "budgets": {2: (10, 14), 3: (15, 20)}}
-RULES = ("edge", "faces", "grow")
+RULES = ("edge", "grow", "faces")
 LABELS = {"space-filling": "space-filling one-shot + GP", "window:edge": "edge (misclassification)",
-          "window:faces": "faces only", "window:grow": "grow (default)"}
+          "window:grow": "grow (faces and volume alternately)", "window:faces": "faces (default)"}
 
 
 def _task(name, strategy, seed, budgets):

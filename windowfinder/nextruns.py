@@ -6,12 +6,12 @@ Every run is expensive, so each proposed setting is chosen by a criterion, on co
 **Window** (grow and sharpen the window). A setting belongs to the window when a new run there meets
 every limit with probability at least the confidence ``c``, and the window is the largest box of such
 settings (:mod:`windowfinder.window`). With exact GP models the criterion is the expected growth of that
-window from one more run, looked ahead on the models' posterior (:mod:`windowfinder.windowgain`):
-window runs alternate between pushing the current window's faces (expected advance of each face times
-its area) and exploring (expected growth of the confirmed volume anywhere, which may seed a larger
-window elsewhere); before any window exists every window run explores. Pushing faces alone can stall
-on a small first window; docs/benchmarks.md ("Window rules compared") measures the three rules of
-``window_rule`` against each other and against a one-shot design.
+window from one more run, looked ahead on the models' posterior (:mod:`windowfinder.windowgain`): the
+expected advance of each face of the current window times its area. Before any window exists, the
+expected growth of the confirmed volume anywhere. ``window_rule="grow"`` alternates the two even with
+a window in hand (to look for a larger window elsewhere) and ``"edge"`` uses the criterion below
+throughout; docs/benchmarks.md ("Window rules compared") measures the three against each other and
+against a one-shot design, and the default is the one that did best there.
 
 Where the look-ahead is unavailable (sparse or quadratic models) or expects no growth anywhere, the
 edge criterion is used: with the true process means ``f_k(x)`` known, ``x`` is in the window when
@@ -75,7 +75,7 @@ from .window import find_window
 from .windowgain import MARGIN, WindowGain
 
 AIMS = ("balanced", "window", "tradeoff")
-WINDOW_RULES = ("grow", "faces", "edge")
+WINDOW_RULES = ("faces", "grow", "edge")
 SENSES = ("maximize", "minimize", "target")
 N_SAMPLES = 128              # posterior draws per criterion (common random numbers)
 N_SAMPLES_MANY_GOALS = 32    # three or more goals: pymoo hypervolume per draw
@@ -334,7 +334,7 @@ def _gain_setup(acq, base, d, tolerance, seed, snap):
 
 def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence=0.95, seed=0,
             snap=None, n_candidates=None, min_distance=None, tolerance=None,
-            window_rule="grow") -> Suggestions:
+            window_rule="faces") -> Suggestions:
     """Propose ``count`` next runs (see the module docstring for the criteria).
 
     Parameters
@@ -360,10 +360,10 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
         Default ``0.05 * sqrt(d)``.
     tolerance : ndarray (d,) or None
         Coded factor tolerances, for the current window that the window criterion grows.
-    window_rule : {"grow", "faces", "edge"}
-        Window runs: ``grow`` (default) alternates pushing the current window's faces and growing the
-        confirmed volume anywhere; ``faces`` only pushes faces; ``edge`` uses the misclassification
-        criterion throughout (the comparison of the three is in docs/benchmarks.md).
+    window_rule : {"faces", "grow", "edge"}
+        Window runs: ``faces`` (default) push the current window's faces; ``grow`` alternates that with
+        growing the confirmed volume anywhere; ``edge`` uses the misclassification criterion throughout
+        (the three are compared in docs/benchmarks.md).
 
     Returns
     -------
