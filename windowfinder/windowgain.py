@@ -38,7 +38,8 @@ from .designs import sobol
 
 N_REFERENCE = 256     # reference settings over the whole space (no window yet)
 N_LAYERS = 4          # layers of depth outside each face of the window
-N_FACE_POINTS = 8     # settings per layer and per factor along the face
+N_FACE_POINTS = 8     # settings per layer and per factor along the face ...
+MAX_FACE_POINTS = 24  # ... at most this many per layer
 DEPTH = 0.5           # deepest layer: half the window's width along that factor ...
 MARGIN = 0.05         # ... but at least this, coded units
 N_DRAWS = 16          # fantasised outcomes per response (common random numbers)
@@ -113,14 +114,24 @@ class WindowGain:
         self.d, self.confidence = int(d), float(confidence)
         self.n_draws, self.seed = int(n_draws), int(seed)
         self.area_ = self.step_ = None
+        self._cache = {}
         if box is not None:
             t = np.zeros(d) if tolerance is None else np.asarray(tolerance, float)
             Z, area, step = _face_layers(np.asarray(box[0], float), np.asarray(box[1], float), t, DEPTH,
-                                         N_LAYERS, N_FACE_POINTS * max(d - 1, 1), seed)
+                                         N_LAYERS, min(N_FACE_POINTS * max(d - 1, 1), MAX_FACE_POINTS), seed)
             if len(area):
                 self.Z_, self.area_, self.step_ = Z, area, step
                 return
         self.Z_ = sobol(d, N_REFERENCE, seed)
+
+    def _state(self, model):
+        """Mean and sd at the reference settings and their whitened cross-covariances, once per model
+        (the models of one state of the batch; a conditioned model is a new object)."""
+        key = id(model)
+        if key not in self._cache:
+            mu_sd = model.predict(self.Z_, return_std=True, noise=False)
+            self._cache[key] = (mu_sd, model.whitened(self.Z_), model)   # the model keeps its id valid
+        return self._cache[key][:2]
 
     def _value(self, ok):
         """Window measure of confirmed indicators ``ok`` (z, m, S) -> (m,): the expected advance of
@@ -154,7 +165,8 @@ class WindowGain:
         names = list(dict.fromkeys(n for n, _, _ in limits))
         eps = {n: np.random.default_rng([self.seed, k]).standard_normal(self.n_draws)
                for k, n in enumerate(names)}     # common random numbers: the same for every candidate
-        now = {n: models[n].predict(Z, return_std=True, noise=False) for n in names}
+        cached = {n: self._state(models[n]) for n in names}
+        now = {n: cached[n][0] for n in names}
         tau2 = {n: float(getattr(models[n], "noise_std_", 0.0)) ** 2 for n in names}
         log_works = np.log(np.maximum(np.asarray(p_works(Z), float), 1e-300))
         base = log_works + sum(_log_p(now[n][0], np.sqrt(now[n][1] ** 2 + tau2[n]), lo, hi)
@@ -168,7 +180,7 @@ class WindowGain:
             for n in names:
                 m = models[n]
                 var_x = m.predict(Xc, return_std=True, noise=False)[1] ** 2 + tau2[n]
-                s = m.cross_covariance(Z, Xc) / np.sqrt(var_x)[None, :]          # (z, m)
+                s = m.cross_covariance(Z, Xc, cached[n][1]) / np.sqrt(var_x)[None, :]   # (z, m)
                 mu, sd = now[n]
                 var = np.maximum(sd[:, None] ** 2 - s ** 2, 0.0) + tau2[n]
                 fantasy[n] = (mu[:, None, None] + s[:, :, None] * eps[n][None, None, :],
