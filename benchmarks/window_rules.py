@@ -15,9 +15,8 @@ from concurrent.futures import ProcessPoolExecutor
 import numpy as np
 import pandas as pd
 
-from . import strategies as st
 from .problems import get_problem, reference
-from .sample_efficiency import WORKERS, _fmt, _one_thread, _table, say
+from .sample_efficiency import WORKERS, _fmt, _one_thread, _table, _task, say
 
 FULL = {"problems": ("reactor", "tempering", "gramacy", "c2dtlz2"), "seeds": (1, 2, 3, 4, 5),
         "budgets": {2: (10, 20, 30), 3: (15, 20, 30)}}
@@ -27,18 +26,13 @@ LABELS = {"space-filling": "space-filling one-shot + GP", "window:edge": "edge (
           "window:grow": "grow (faces and volume alternately)", "window:faces": "faces (default)"}
 
 
-def _task(name, strategy, seed, budgets):
-    problem, ref = get_problem(name), reference(name)
-    rows = st.run_strategy(problem, ref, strategy, budgets, seed)
-    return [{"problem": name, "strategy": strategy, "seed": seed, **r} for r in rows]
-
-
 def main(quick: bool = False) -> str:
     cfg = QUICK if quick else FULL
     t0 = time.perf_counter()
     strategies = ["space-filling"] + [f"window:{r}" for r in RULES]
-    jobs = [(n, s, seed, cfg["budgets"][get_problem(n).d]) for n in cfg["problems"] for s in strategies
-            for seed in cfg["seeds"]]
+    refs = {n: reference(n) for n in cfg["problems"]}
+    jobs = [(n, s, seed, cfg["budgets"][get_problem(n).d], refs[n]) for n in cfg["problems"]
+            for s in strategies for seed in cfg["seeds"]]
     jobs.sort(key=lambda j: j[1] == "space-filling")     # the long sequential runs first
     with ProcessPoolExecutor(max_workers=WORKERS, initializer=_one_thread) as pool:
         rows = [r for out in pool.map(_task, *zip(*jobs)) for r in out]

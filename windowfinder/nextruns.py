@@ -310,7 +310,7 @@ def _scorer(state, kind, avoid):
     return score_fn
 
 
-def _gain_setup(acq, base, d, tolerance, seed, snap):
+def _gain_setup(acq, base, d, tolerance, seed, snap, explore=False):
     """Window candidates for the expected-window-growth criterion, or None where it does not apply.
 
     It applies when every limited response has an exact GP model (posterior cross-covariances). The
@@ -323,7 +323,8 @@ def _gain_setup(acq, base, d, tolerance, seed, snap):
     w = find_window(acq.feas_.joint, d, acq.confidence, tolerance=tolerance, seed=seed)
     box = (w.lower, w.upper) if w.found else None
     acq.gain_ = WindowGain(d, acq.confidence, box, tolerance, seed=seed)
-    acq.explore_ = WindowGain(d, acq.confidence, None, seed=seed)
+    if explore and box is not None:   # rule "grow": confirmed volume anywhere, every other run
+        acq.explore_ = WindowGain(d, acq.confidence, None, seed=seed)
     if box is None:
         return base
     pad = np.maximum(w.upper - w.lower, 2 * MARGIN) + (0.0 if tolerance is None else np.asarray(tolerance))
@@ -388,13 +389,14 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     aims = _aims(aim, count, found, bool(limits), bool(goals))
     rng = np.random.default_rng([seed, 1])
     use_gain = "window" in aims and window_rule != "edge"
-    base_window = _gain_setup(acq, base, d, tolerance, seed, snap) if use_gain else None
+    base_window = (_gain_setup(acq, base, d, tolerance, seed, snap, window_rule == "grow") if use_gain
+                   else None)
 
     picks, gains, replicate, state = [], [], [], acq
     for a in aims:
         kind = "gain" if a == "window" and base_window is not None else a
-        alternate = window_rule == "grow" and (len(X_runs) + aims[:len(picks)].count(a)) % 2
-        if kind == "gain" and acq.gain_.area_ is not None and alternate:
+        alternate = (len(X_runs) + aims[:len(picks)].count(a)) % 2
+        if kind == "gain" and acq.explore_ is not None and alternate:
             kind = "explore"       # every other window run: confirmed volume anywhere
         cands = (base_tradeoff if a == "tradeoff" else base if kind in ("window", "explore")
                  else base_window)

@@ -114,7 +114,7 @@ class WindowGain:
         self.d, self.confidence = int(d), float(confidence)
         self.n_draws, self.seed = int(n_draws), int(seed)
         self.area_ = self.step_ = None
-        self._cache = {}
+        self._cache, self._v_now, self._log_works = {}, {}, None
         if box is not None:
             t = np.zeros(d) if tolerance is None else np.asarray(tolerance, float)
             Z, area, step = _face_layers(np.asarray(box[0], float), np.asarray(box[1], float), t, DEPTH,
@@ -168,10 +168,15 @@ class WindowGain:
         cached = {n: self._state(models[n]) for n in names}
         now = {n: cached[n][0] for n in names}
         tau2 = {n: float(getattr(models[n], "noise_std_", 0.0)) ** 2 for n in names}
-        log_works = np.log(np.maximum(np.asarray(p_works(Z), float), 1e-300))
-        base = log_works + sum(_log_p(now[n][0], np.sqrt(now[n][1] ** 2 + tau2[n]), lo, hi)
-                               for n, lo, hi in limits)
-        v_now = float(self._value((base >= log_c)[:, None, None])[0])
+        if self._log_works is None:      # the failure model is not looked ahead: the same for every state
+            self._log_works = np.log(np.maximum(np.asarray(p_works(Z), float), 1e-300))
+        log_works = self._log_works
+        key = tuple(id(models[n]) for n in names) + tuple(limits)
+        if key not in self._v_now:
+            base = log_works + sum(_log_p(now[n][0], np.sqrt(now[n][1] ** 2 + tau2[n]), lo, hi)
+                                   for n, lo, hi in limits)
+            self._v_now[key] = float(self._value((base >= log_c)[:, None, None])[0])
+        v_now = self._v_now[key]
         out = np.empty(len(X))
         for i in range(0, len(X), CHUNK):
             Xc = X[i:i + CHUNK]
