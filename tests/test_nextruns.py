@@ -287,14 +287,16 @@ def test_picks_avoid_predicted_failure_region():
 
 
 def test_window_rules_contract():
-    # contract of suggest (docstring), no external source: each rule proposes valid runs; the edge rule
-    # reports misclassification probabilities (at most 0.5), an unknown rule is refused
+    # contract of suggest (docstring), no external source: each rule proposes valid runs; the edge rule's
+    # first gain is the misclassification probability of the unconditioned models at that pick
     X = sobol(2, 10, 3)
     S = Surrogates.fit_arrays(X, {"a": quadratic_response(X, np.array([0.4, 0.5]))}, n_restarts=0)
+    limits = [("a", None, 0.08)]
     for rule in ("grow", "faces", "edge"):
-        s = suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", n_candidates=128, window_rule=rule)
+        s = suggest(S, limits, [], X, 2, aim="window", n_candidates=128, window_rule=rule)
         assert s.X.shape == (2, 2) and np.all((s.X >= 0) & (s.X <= 1))
         if rule == "edge":
-            assert np.all(s.gain <= 0.5)
+            expected = Acquisition(S, limits, [], X, seed=0).window(s.X[:1])[0][0]
+            assert s.gain[0] == pytest.approx(expected, abs=1e-12)
     with pytest.raises(InputError, match="window rule"):
         suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", window_rule="sideways")
