@@ -2,7 +2,7 @@
 
 On each bundled noisy simulator: a 30-run space-filling design per seed, the GP models fitted twice
 (windowfinder's default, with the log-normal prior on the noise variance of
-:data:`windowfinder.surrogate.NOISE_PRIOR`; and by maximum likelihood, the prior switched off), the
+:data:`windowfinder.models.gp.NOISE_PRIOR`; and by maximum likelihood, the prior switched off), the
 fitted noise sd compared with the simulator's own, and both claimed 95 % windows judged against the
 truth as in the sample-efficiency section. ``main(quick)`` returns the Markdown.
 """
@@ -15,7 +15,7 @@ from concurrent.futures import ProcessPoolExecutor
 import numpy as np
 import pandas as pd
 
-from windowfinder import surrogate
+from windowfinder.models import gp as surrogate
 
 from . import strategies as st
 from .problems import SIMULATORS, get_problem, reference

@@ -1,6 +1,6 @@
 """Benchmark problems with known truth, and the truth-side measures the benchmark judges windows by.
 
-A :class:`Problem` is a study (a :class:`~windowfinder.spec.StudySpec`: factors, responses, limits,
+A :class:`Problem` is a study (a :class:`~windowfinder.inputs.spec.StudySpec`: factors, responses, limits,
 goals, tolerances) plus its noise-free truth and a way to make one run. Two kinds:
 
 * the bundled demo simulators (:mod:`windowfinder.cases`): runs carry the simulator's own run-to-run
@@ -38,8 +38,8 @@ from scipy import ndimage
 from scipy.stats import norm, qmc
 
 from windowfinder.cases import RunFailed, case_dir, load_simulator
-from windowfinder.hypervolume import hypervolume
-from windowfinder.spec import StudySpec
+from windowfinder.answers.hypervolume import hypervolume
+from windowfinder.inputs.spec import StudySpec
 
 GRID = {2: 201, 3: 81}  # grid points per factor for the brute-force truth (coded spacing 1/(n-1))
 CONFIDENCE = 0.95  # the confidence every window and front of the benchmark is stated at

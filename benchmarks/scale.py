@@ -110,7 +110,7 @@ def accuracy(n: int = 2000, n_test: int = 2048, seed: int = 0) -> dict:
     import numpy as np
     from sklearn.datasets import make_friedman1
 
-    from windowfinder.surrogate import GPModel
+    from windowfinder.models.gp import GPModel
 
     X, y = make_friedman1(n, n_features=10, noise=1.0, random_state=seed)
     Xt, ft = make_friedman1(n_test, n_features=10, noise=0.0, random_state=seed + 1)

@@ -198,7 +198,7 @@ def main(quick: bool = False) -> str:
         "",
         f"Ratio: **{rows_c[2][1]:.2f}** (target <= 4: {_verdict(rows_c[2][1], 4.0)}). windowfinder fits a "
         "richer kernel (Matern-5/2 ARD + quadratic trend + noise) with 5 restarts and then searches the "
-        "window; its likelihood is evaluated by `windowfinder.likelihood` rather than scikit-learn's "
+        "window; its likelihood is evaluated by `windowfinder.models.likelihood` rather than scikit-learn's "
         "kernel-gradient tensor.",
     ])
 

@@ -18,10 +18,10 @@ Sequential strategies share one initial Latin hypercube and the same run-to-run 
 then add runs in batches until each budget on the grid is reached exactly (the snapshots are nested):
 
 * ``random``: uniform random settings;
-* ``window``, ``tradeoff``, ``balanced``: :func:`windowfinder.nextruns.suggest` with that aim.
+* ``window``, ``tradeoff``, ``balanced``: :func:`windowfinder.nextruns.suggestions.suggest` with that aim.
 
 Two more comparisons: NSGA-II run on the noise-free truth (:func:`nsga_evaluations`), and the closed
-loop of :func:`windowfinder.campaign.run_campaign` on the bundled reactor against a one-shot design of
+loop of :func:`windowfinder.campaign.loop.run_campaign` on the bundled reactor against a one-shot design of
 the same size, through the study-folder API with windowfinder's full defaults (:func:`campaign_once`).
 """
 
@@ -36,15 +36,15 @@ import numpy as np
 from windowfinder.answers import build_window, objectives_of
 from windowfinder.campaign import run_campaign, run_seed
 from windowfinder.cases import case_dir
-from windowfinder.designs import central_composite, make_design, one_factor_at_a_time
+from windowfinder.inputs.designs import central_composite, make_design, one_factor_at_a_time
 from windowfinder.errors import InputError
-from windowfinder.feasibility import Feasibility
-from windowfinder.hypervolume import hypervolume
+from windowfinder.answers.feasibility import Feasibility
+from windowfinder.answers.hypervolume import hypervolume
 from windowfinder.nextruns import suggest
 from windowfinder.study import Study
-from windowfinder.surrogate import Surrogates
-from windowfinder.tradeoff import find_tradeoff, normalised_igd
-from windowfinder.window import find_window
+from windowfinder.models.surrogates import Surrogates
+from windowfinder.answers.tradeoff import find_tradeoff, normalised_igd
+from windowfinder.answers.window import find_window
 
 from .problems import CONFIDENCE, Problem, box_precision, get_problem, non_dominated, truth_problem
 

@@ -1,7 +1,7 @@
 """Window rules compared: which criterion for the window runs grows the trustworthy window fastest.
 
 The same sequential loop as the sample-efficiency section (initial Latin hypercube, batches of 2, the
-same judge) with aim window and each rule of :func:`windowfinder.nextruns.suggest`: ``edge`` (the
+same judge) with aim window and each rule of :func:`windowfinder.nextruns.suggestions.suggest`: ``edge`` (the
 misclassification criterion on the joint feasibility), ``faces`` (the default: expected advance of the
 current window's faces) and ``grow`` (faces and confirmed-volume growth anywhere, alternately),
 against the space-filling one-shot design of the same size. ``main(quick)`` returns the Markdown.

@@ -22,8 +22,8 @@ from benchmarks.problems import (box_precision, eroded, get_problem, grid, large
                                  non_dominated)
 from benchmarks.strategies import one_shot_design
 from windowfinder.cases import load_simulator
-from windowfinder.designs import central_composite
-from windowfinder.tradeoff import normalised_igd
+from windowfinder.inputs.designs import central_composite
+from windowfinder.answers.tradeoff import normalised_igd
 
 
 def _sobol(d, n=512, seed=0):

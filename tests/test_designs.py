@@ -1,4 +1,4 @@
-"""Checks of windowfinder.designs against published run counts, design properties and scipy."""
+"""Checks of windowfinder.inputs.designs against published run counts, design properties and scipy."""
 
 from __future__ import annotations
 
@@ -11,7 +11,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from scipy.stats import qmc
 
-from windowfinder.designs import (METHODS, box_behnken, central_composite, design_size, full_factorial,
+from windowfinder.inputs.designs import (METHODS, box_behnken, central_composite, design_size, full_factorial,
                                   is_latin, make_design, maximin_latin_hypercube, one_factor_at_a_time,
                                   sobol, space_filling)
 from windowfinder.errors import InputError

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.diagnostics against brute-force leave-one-out refits.
+"""Checks of windowfinder.models.diagnostics against brute-force leave-one-out refits.
 
 Sources:
 - Q^2 = 1 - PRESS / SS_tot with PRESS the sum of squared leave-one-out prediction errors
@@ -21,9 +21,11 @@ import pytest
 from scipy import stats
 from sklearn.gaussian_process import GaussianProcessRegressor
 
-from windowfinder.diagnostics import ModelDiagnostics, diagnose, diagnose_all, summary_frame
+from windowfinder.models.diagnostics import ModelDiagnostics, diagnose, diagnose_all, summary_frame
 from windowfinder.errors import InputError
-from windowfinder.surrogate import JITTER, LENGTH_SCALE_BOUNDS, GPModel, QuadraticModel, Surrogates
+from windowfinder.models.gp import JITTER, LENGTH_SCALE_BOUNDS, GPModel
+from windowfinder.models.quadratic import QuadraticModel
+from windowfinder.models.surrogates import Surrogates
 
 DATA = Path(__file__).parent / "data" / "montgomery_ccd.csv"
 FACTORS, SPANS = ["time", "temperature"], [10.0, 10.0]  # coded [0, 1] = 80..90 min, 170..180 degF

@@ -13,9 +13,9 @@ import pytest
 
 from windowfinder.cli import main
 from windowfinder.errors import InputError
-from windowfinder.lock import LOCK_NAME, StudyLock
-from windowfinder.runs import read_runs
-from windowfinder.spec import StudySpec
+from windowfinder.inputs.lock import LOCK_NAME, StudyLock
+from windowfinder.inputs.runs import read_runs
+from windowfinder.inputs.spec import StudySpec
 from conftest import snapshot
 
 HERE = Path(__file__).parent

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.feasibility.
+"""Checks of windowfinder.answers.feasibility.
 
 Sources used below:
 - scipy.stats (Virtanen et al. 2020, Nature Methods 17, "SciPy 1.0") as the reference library for the
@@ -7,7 +7,7 @@ Sources used below:
   check of the joint probability; a simulated proportion has standard error sqrt(p (1 - p) / n).
 - scipy.spatial.distance.cdist as the reference for the distance to the nearest run.
 - A normal with sd -> 0 is a point mass (elementary), so P(lo <= Y <= hi) becomes the indicator.
-Fake models stand in for windowfinder.surrogate (the interface: predict(X, return_std, noise) -> latent
+Fake models stand in for windowfinder.models.gp (the interface: predict(X, return_std, noise) -> latent
 mean and sd, transform_.forward_limit); one check at the end uses a real GPModel.
 """
 
@@ -21,7 +21,7 @@ from scipy.spatial.distance import cdist
 from scipy.stats import lognorm, norm
 
 from windowfinder.errors import InputError
-from windowfinder.feasibility import Feasibility, limit_probability
+from windowfinder.answers.feasibility import Feasibility, limit_probability
 
 
 class FakeTransform:
@@ -219,7 +219,7 @@ def test_bad_limits_raise_input_error(limits):
 
 
 def test_with_a_real_gp_model():
-    surrogate = pytest.importorskip("windowfinder.surrogate")
+    surrogate = pytest.importorskip("windowfinder.models")
     X = np.linspace(0, 1, 12)[:, None]
     y = np.sin(6 * X[:, 0]) + 0.05 * np.random.default_rng(4).normal(size=12)
     gp = surrogate.GPModel(n_restarts=1, random_state=0).fit(X, y)

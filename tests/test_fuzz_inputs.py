@@ -35,7 +35,7 @@ from threadpoolctl import threadpool_limits
 from windowfinder.answers import build_window
 from windowfinder.cli import main
 from windowfinder.errors import InputError
-from windowfinder.spec import Factor, StudySpec
+from windowfinder.inputs.spec import Factor, StudySpec
 from windowfinder.study import Study
 
 INPUTS = ("study.toml", "runs.csv")

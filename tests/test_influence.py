@@ -1,4 +1,4 @@
-"""Sobol' indices (windowfinder.influence) against closed forms."""
+"""Sobol' indices (windowfinder.answers.influence) against closed forms."""
 
 from __future__ import annotations
 
@@ -6,9 +6,9 @@ import numpy as np
 import pytest
 
 from windowfinder.errors import InputError
-from windowfinder.influence import model_indices, sobol_indices
-from windowfinder.spec import StudySpec
-from windowfinder.surrogate import Surrogates
+from windowfinder.answers.influence import model_indices, sobol_indices
+from windowfinder.inputs.spec import StudySpec
+from windowfinder.models.surrogates import Surrogates
 
 A, B = 7.0, 0.1
 

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.nextruns and windowfinder.hypervolume.
+"""Checks of windowfinder.nextruns.suggestions and windowfinder.answers.hypervolume.
 
 Sources used below:
 - Zitzler & Thiele (1998), "Multiobjective optimization using evolutionary algorithms - a comparative
@@ -28,12 +28,14 @@ from pymoo.indicators.hv import HV
 from scipy.stats import norm
 from sklearn.gaussian_process import GaussianProcessRegressor
 
-from windowfinder.designs import sobol
+from windowfinder.inputs.designs import sobol
 from windowfinder.errors import InputError
-from windowfinder.feasibility import Feasibility
-from windowfinder.hypervolume import expected_improvement, hypervolume, improvement
+from windowfinder.answers.feasibility import Feasibility
+from windowfinder.answers.hypervolume import expected_improvement, hypervolume, improvement
 from windowfinder.nextruns import Acquisition, Suggestions, suggest
-from windowfinder.surrogate import JITTER, GPModel, Surrogates, Transform
+from windowfinder.models.gp import JITTER, GPModel
+from windowfinder.models.surrogates import Surrogates
+from windowfinder.models.transform import Transform
 
 
 # ----------------------------------------------------------------------------- independent helpers

@@ -24,16 +24,16 @@ from scipy.stats import norm
 
 from windowfinder.answers import build_tradeoff, build_window
 from windowfinder.cases import case_dir, load_simulator
-from windowfinder.diagnostics import ModelDiagnostics
+from windowfinder.models.diagnostics import ModelDiagnostics
 from windowfinder.errors import InputError
 from windowfinder.export import write_window
-from windowfinder.influence import sobol_indices
+from windowfinder.answers.influence import sobol_indices
 from windowfinder.report import (SECTION_IDS, influence_figure, loo_figure, map_figure,
                                  probability_map_figure, slice_centre, slice_grid, tradeoff_figure,
                                  write_report)
 from windowfinder.report import tables
 from windowfinder.report.sections import verdict
-from windowfinder.spec import StudySpec
+from windowfinder.inputs.spec import StudySpec
 from windowfinder.study import Study
 
 EVIL = "<script>alert(1)</script>"
@@ -249,7 +249,7 @@ def test_limit_status_wording():
 
 
 def test_model_verdicts():
-    # thresholds of windowfinder.diagnostics (Q2 < 0.5; coverage < 80 % with >= 10 runs): common
+    # thresholds of windowfinder.models.diagnostics (Q2 < 0.5; coverage < 80 % with >= 10 runs): common
     # practice, no source
     def diag(q2, cov, n=12):
         return ModelDiagnostics("y", "gp", n, q2, 1.0, cov)

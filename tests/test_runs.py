@@ -7,8 +7,8 @@ import pandas as pd
 import pytest
 
 from windowfinder.errors import InputError
-from windowfinder.runs import append_runs, next_ids, read_runs, safe_cell
-from windowfinder.spec import StudySpec
+from windowfinder.inputs.runs import append_runs, next_ids, read_runs, safe_cell
+from windowfinder.inputs.spec import StudySpec
 
 
 @pytest.fixture

@@ -13,9 +13,10 @@ from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, Matern, WhiteKernel
 from threadpoolctl import threadpool_limits
 
-from windowfinder.likelihood import SUPPORTED_NU, MarginalLikelihood, SignalKernel
-from windowfinder.sparse import FITC, kcenter
-from windowfinder.surrogate import JITTER, LENGTH_PRIOR, MAX_EXACT_RUNS, NOISE_PRIOR, FailureModel, GPModel
+from windowfinder.models.likelihood import SUPPORTED_NU, MarginalLikelihood, SignalKernel
+from windowfinder.models.sparse import FITC, kcenter
+from windowfinder.models.gp import JITTER, LENGTH_PRIOR, MAX_EXACT_RUNS, NOISE_PRIOR, GPModel
+from windowfinder.models.failure import FailureModel
 
 # Hartmann 3-d test function (Hartmann 1973; Dixon & Szego 1978, "The global optimisation problem: an
 # introduction", in Towards Global Optimisation 2), constants as tabulated in the Surjanovic & Bingham
@@ -161,7 +162,7 @@ def test_chunked_prediction_equals_unchunked(approx):
 
 
 def test_conditioning_the_approximate_model_keeps_its_inducing_points():
-    # kriging-believer fantasies (windowfinder.nextruns) on the FITC path: the conditioned model is FITC
+    # kriging-believer fantasies (windowfinder.nextruns.suggestions) on the FITC path: the conditioned model is FITC
     # on the augmented runs with the same inducing inputs and hyperparameters
     X, y = _data(150, seed=13)
     model = GPModel(n_restarts=0, n_subset=40, max_exact=100).fit(X, y)

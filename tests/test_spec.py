@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from windowfinder.errors import InputError
-from windowfinder.spec import StudySpec
+from windowfinder.inputs.spec import StudySpec
 from conftest import STUDY
 
 

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.surrogate against closed forms, textbook examples and scikit-learn.
+"""Checks of windowfinder.models.gp against closed forms, textbook examples and scikit-learn.
 
 Sources used below:
 - Rasmussen & Williams (2006), Gaussian Processes for Machine Learning, §2.2 (posterior) and §5.4.2
@@ -23,8 +23,11 @@ from scipy.stats import qmc
 from sklearn.gaussian_process import GaussianProcessRegressor
 
 from windowfinder.errors import InputError
-from windowfinder.surrogate import (
-    JITTER, FailureModel, GPModel, QuadraticModel, Surrogates, Transform, feature_names)
+from windowfinder.models.gp import JITTER, GPModel
+from windowfinder.models.failure import FailureModel
+from windowfinder.models.quadratic import QuadraticModel, feature_names
+from windowfinder.models.surrogates import Surrogates
+from windowfinder.models.transform import Transform
 
 DATA = Path(__file__).parent / "data" / "montgomery_ccd.csv"
 

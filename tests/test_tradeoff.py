@@ -1,4 +1,4 @@
-"""Tests for windowfinder.tradeoff: constrained trade-off search on Gaussian-process surrogates.
+"""Tests for windowfinder.answers.tradeoff: constrained trade-off search on Gaussian-process surrogates.
 
 Every expectation comes from outside the module: pymoo's test problems with their known Pareto fronts,
 a brute-force optimum, closed-form knee points and hand-computed desirabilities.
@@ -11,8 +11,8 @@ from scipy.optimize import minimize as scipy_minimize
 from scipy.stats import norm, qmc
 
 from windowfinder.errors import InputError
-from windowfinder.surrogate import GPModel
-from windowfinder.tradeoff import (
+from windowfinder.models.gp import GPModel
+from windowfinder.answers.tradeoff import (
     desirability,
     find_tradeoff,
     igd,

@@ -10,7 +10,7 @@ from windowfinder.cases import case_dir, load_simulator
 from windowfinder.cli import main
 from windowfinder.errors import InputError
 from windowfinder.study import Study
-from windowfinder.testplan import build_testplan, verify_plan
+from windowfinder.answers.testplan import build_testplan, verify_plan
 from conftest import snapshot
 
 

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.window.
+"""Checks of windowfinder.answers.window.
 
 Sources used below:
 - Elementary geometry: the largest axis-aligned square inscribed in a disc of radius r has its corners
@@ -22,7 +22,7 @@ import pytest
 from scipy.stats import norm, qmc
 
 from windowfinder.errors import InputError
-from windowfinder.window import find_window
+from windowfinder.answers.window import find_window
 
 R, CENTRE, STEEP = 0.35, np.array([0.5, 0.5]), 1000.0
 
@@ -53,8 +53,8 @@ def test_disc_window_is_inside_and_near_the_inscribed_square():
 
 
 def test_disc_window_from_a_real_gp_model():
-    surrogate = pytest.importorskip("windowfinder.surrogate")
-    from windowfinder.feasibility import Feasibility
+    surrogate = pytest.importorskip("windowfinder.models")
+    from windowfinder.answers.feasibility import Feasibility
 
     X = qmc.Sobol(2, scramble=True, seed=3).random(64)[:48]
     margin = R ** 2 - ((X - CENTRE) ** 2).sum(axis=1)  # noise-free runs of the margin

@@ -1,4 +1,4 @@
-"""Checks of windowfinder.windowgain (expected window growth from one more run).
+"""Checks of windowfinder.nextruns.windowgain (expected window growth from one more run).
 
 Sources used below:
 - Rasmussen & Williams (2006), *Gaussian Processes for Machine Learning*, eqs. 2.24-2.26: posterior
@@ -18,9 +18,9 @@ from __future__ import annotations
 import numpy as np
 from scipy.stats import norm
 
-from windowfinder.designs import sobol
-from windowfinder.surrogate import GPModel
-from windowfinder.windowgain import N_LAYERS, WindowGain
+from windowfinder.inputs.designs import sobol
+from windowfinder.models.gp import GPModel
+from windowfinder.nextruns.windowgain import N_LAYERS, WindowGain
 
 
 def fitted(d=2, n=12, seed=0):

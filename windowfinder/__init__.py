@@ -9,8 +9,8 @@ for _var in ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS"):
 
 __version__ = "0.1.0"
 
-from .errors import InputError  # noqa: E402
-from .spec import Factor, Response, StudySpec  # noqa: E402
-from .study import Study  # noqa: E402
+from windowfinder.errors import InputError  # noqa: E402
+from windowfinder.inputs.spec import Factor, Response, StudySpec  # noqa: E402
+from windowfinder.study import Study  # noqa: E402
 
 __all__ = ["InputError", "Factor", "Response", "StudySpec", "Study", "__version__"]

@@ -12,7 +12,7 @@ import os
 import sys
 from pathlib import Path
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 
 class _Parser(argparse.ArgumentParser):
@@ -26,7 +26,7 @@ def _out(study, name: str) -> Path:
 
 
 def _load(args):
-    from .study import Study
+    from windowfinder.study import Study
 
     return Study.load(args.study_dir)
 
@@ -38,7 +38,7 @@ def _warn(lines):
 
 # -- verbs -----------------------------------------------------------------------------------------
 def cmd_new(args):
-    from .study import create_study
+    from windowfinder.study import create_study
 
     path = create_study(args.study_dir, example=args.example, name=args.name)
     print(f"created {path}")
@@ -66,7 +66,7 @@ def cmd_design(args):
     study = _load(args)
     frame = study.design(args.method, runs=args.runs, centre=args.centre, seed=args.seed)
     path = _out(study, "design.csv")
-    from .runs import format_rows, write_atomic
+    from windowfinder.inputs.runs import format_rows, write_atomic
 
     header = list(frame.columns)
     write_atomic(path, ",".join(header) + "\n" + format_rows(frame, header))
@@ -82,7 +82,7 @@ def cmd_fit(args):
     res = study.fit(kind=args.model, n_restarts=args.restarts)
     _warn(res.warnings)
     path = _out(study, "fit.json")
-    from .runs import write_atomic
+    from windowfinder.inputs.runs import write_atomic
 
     write_atomic(path, json.dumps(res.to_dict(), indent=2, allow_nan=False) + "\n")
     print(format_diagnostics(res, study.spec))
@@ -123,8 +123,8 @@ def _print_cautions(cautions, safety: bool):
 
 
 def cmd_window(args):
-    from .answers import build_window
-    from .export import window_table, write_window
+    from windowfinder.answers.results import build_window
+    from windowfinder.export.files import window_table, write_window
 
     study = _load(args)
     sp = _set_point(args.set_point, study.spec)
@@ -143,8 +143,8 @@ def cmd_window(args):
 
 
 def cmd_tradeoff(args):
-    from .answers import build_tradeoff
-    from .export import write_csv
+    from windowfinder.answers.results import build_tradeoff
+    from windowfinder.export.files import write_csv
 
     study = _load(args)
     fit = study.fit()
@@ -167,7 +167,7 @@ def cmd_tradeoff(args):
 
 
 def cmd_suggest(args):
-    from .export import write_csv
+    from windowfinder.export.files import write_csv
 
     study = _load(args)
     if args.count < 1:
@@ -183,7 +183,7 @@ def cmd_suggest(args):
     print(nxt.message)
     print(f"advice: {nxt.advice}")
     if study.spec.has_safety:
-        from .answers import CAUTION_SAFETY
+        from windowfinder.answers.results import CAUTION_SAFETY
 
         names = ", ".join(r.name for r in study.spec.limited if r.is_safety)
         print("CAUTION: " + CAUTION_SAFETY.format(names=names))
@@ -191,7 +191,7 @@ def cmd_suggest(args):
 
 
 def cmd_run(args):
-    from .campaign import run_campaign
+    from windowfinder.campaign.loop import run_campaign
 
     res = run_campaign(args.study_dir, command=args.command, function=args.function, budget=args.budget,
                        initial=args.initial, batch=args.batch, workers=args.workers,
@@ -207,8 +207,8 @@ def cmd_run(args):
 def cmd_report(args):
     import pandas as pd
 
-    from .answers import build_tradeoff, build_window
-    from .report import write_report
+    from windowfinder.answers.results import build_tradeoff, build_window
+    from windowfinder.report import write_report
 
     study = _load(args)
     spec = study.spec
@@ -230,9 +230,9 @@ def cmd_report(args):
 
 
 def cmd_testplan(args):
-    from .answers import build_window
-    from .export import write_csv
-    from .testplan import build_testplan
+    from windowfinder.answers.results import build_window
+    from windowfinder.export.files import write_csv
+    from windowfinder.answers.testplan import build_testplan
 
     study = _load(args)
     fit = study.fit()
@@ -247,8 +247,8 @@ def cmd_testplan(args):
 
 
 def cmd_verify(args):
-    from .export import write_csv
-    from .testplan import read_filled_plan, verify_plan
+    from windowfinder.export.files import write_csv
+    from windowfinder.answers.testplan import read_filled_plan, verify_plan
 
     study = _load(args)
     filled = read_filled_plan(args.file, study.spec)
@@ -266,7 +266,7 @@ def cmd_verify(args):
 
 # -- parser ----------------------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
-    from .designs import METHODS
+    from windowfinder.inputs.designs import METHODS
 
     p = _Parser(prog="windowfinder",
                 description="Process windows with stated confidence from few, expensive runs.")
@@ -337,7 +337,7 @@ def main(argv=None) -> int:
         if args.verb in ("new", "check"):
             args.fn(args)
             return 0
-        from .lock import StudyLock
+        from windowfinder.inputs.lock import StudyLock
 
         with StudyLock(args.study_dir) as lock:
             if lock.stale_pid_:

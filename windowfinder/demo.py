@@ -14,8 +14,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from . import cli
-from .cases import RunFailed, load_simulator
+from windowfinder import cli
+from windowfinder.cases import RunFailed, load_simulator
 
 
 def simulate_planned(study, case: str, seed: int) -> None:
@@ -59,7 +59,7 @@ def main(argv=None) -> int:
     (folder / ".windowfinder-demo").write_text("created by make demo; safe to delete\n")
     step(["design", str(folder), "--method", "space-filling", "--runs", str(args.runs),
                     "--centre", "2"])
-    from .study import Study
+    from windowfinder.study import Study
 
     study = Study.load(folder)
     print(f"\n(simulating the {len(study.runs.planned())} planned runs with the '{args.case}' simulator "

@@ -15,10 +15,10 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from . import designs
-from .errors import InputError
-from .runs import RunTable, append_runs, next_ids, read_runs, write_atomic, write_runs
-from .spec import StudySpec
+from windowfinder.inputs import designs
+from windowfinder.errors import InputError
+from windowfinder.inputs.runs import RunTable, append_runs, next_ids, read_runs, write_atomic, write_runs
+from windowfinder.inputs.spec import StudySpec
 
 STUDY_FILE = "study.toml"
 RUNS_FILE = "runs.csv"
@@ -190,8 +190,8 @@ class Study:
 
     def fit(self, kind: str = "gp", n_restarts: int = 5) -> FitResult:
         """Fit one model per response (and a failure model when runs failed); LOO diagnostics."""
-        from .diagnostics import diagnose
-        from .surrogate import Surrogates
+        from windowfinder.models.diagnostics import diagnose
+        from windowfinder.models.surrogates import Surrogates
 
         X, Y, works = self.training_data()
         for r in self.spec.responses:
@@ -223,8 +223,8 @@ class Study:
     def suggest(self, count: int, aim: str = "balanced", fit: FitResult | None = None,
                 confidence: float | None = None, seed: int | None = None) -> NextRuns:
         """The next ``count`` runs that most sharpen the window or improve the trade-off."""
-        from .answers import limits_of
-        from .nextruns import suggest
+        from windowfinder.answers.results import limits_of
+        from windowfinder.nextruns.suggestions import suggest
 
         fit = self.fit() if fit is None else fit
         spec = self.spec
@@ -277,7 +277,7 @@ def create_study(directory, example: str | None = None, name: str | None = None)
     if target.exists():
         raise InputError(f"{target}: already exists; choose a new folder (nothing was changed)")
     if example is not None:
-        from . import cases
+        from windowfinder import cases
 
         names = cases.list_cases()
         if example not in names:

@@ -13,14 +13,14 @@ from pathlib import Path
 
 import pandas as pd
 
-from ..errors import InputError
-from ..runs import write_atomic
-from . import sections
-from .figures import figure_png, influence_figure, loo_figure, tradeoff_figure
-from .maps import (SliceGrid, draw_overlays, map_figure, map_pairs, probability_map_figure, slice_centre,
+from windowfinder.errors import InputError
+from windowfinder.inputs.runs import write_atomic
+from windowfinder.report import sections
+from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
+from windowfinder.report.maps import (SliceGrid, draw_overlays, map_figure, map_pairs, probability_map_figure, slice_centre,
                    slice_figure, slice_grid)
-from .method import method_notes
-from .page import page
+from windowfinder.report.method import method_notes
+from windowfinder.report.page import page
 
 SECTION_IDS = ("summary", "data", "models", "maps", "tradeoff", "influence", "next-runs", "method")
 
@@ -34,7 +34,7 @@ def _digest(path) -> str:
 
 def build_html(study, fit, window=None, tradeoff=None, suggestions=None, influence=None) -> str:
     """The report page as text (nothing computed here except figures and tables)."""
-    from ..answers import cautions
+    from windowfinder.answers.results import cautions
 
     spec = study.spec
     caution_list = list(window.cautions) if window is not None else cautions(spec, fit)
@@ -68,25 +68,25 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
     fit : FitResult, optional
         Default ``study.fit()``.
     window : ProcessWindow, optional
-        Default :func:`windowfinder.answers.build_window` at the study's confidence (None when no
+        Default :func:`windowfinder.answers.results.build_window` at the study's confidence (None when no
         response has a limit).
     tradeoff : TradeoffTable, optional
-        Default :func:`windowfinder.answers.build_tradeoff` (None when no response has a goal).
+        Default :func:`windowfinder.answers.results.build_tradeoff` (None when no response has a goal).
     suggestions : DataFrame, optional
         Proposed next runs (``run`` and factor columns in natural units, any further columns); shown in
         their own section and on the maps.
     path : path-like, optional
         Default ``STUDY_DIR/out/report.html``.
     influence : SobolIndices, optional
-        Default :func:`windowfinder.influence.model_indices` with ``influence_n`` base samples.
+        Default :func:`windowfinder.answers.influence.model_indices` with ``influence_n`` base samples.
 
     Returns
     -------
     pathlib.Path
         The file written (atomically: temporary file, fsync, rename).
     """
-    from ..answers import build_tradeoff, build_window
-    from ..influence import model_indices
+    from windowfinder.answers.results import build_tradeoff, build_window
+    from windowfinder.answers.influence import model_indices
 
     spec = study.spec
     fit = study.fit() if fit is None else fit

@@ -60,11 +60,11 @@ def loo_figure(model, y=None, response=None, unit: str = "") -> Figure:
     ----------
     model : fitted GPModel / QuadraticModel, or ModelDiagnostics
         A model (its closed-form leave-one-out predictions are computed with
-        :func:`windowfinder.diagnostics.diagnose`) or diagnostics already computed (``study.fit()``).
+        :func:`windowfinder.models.diagnostics.diagnose`) or diagnostics already computed (``study.fit()``).
     y : array (n,), optional
         Measured values the model was fitted on (natural units); recovered from the model when None.
     response : str or Response, optional
-        Name (and unit, when a :class:`~windowfinder.spec.Response` is given) for the labels.
+        Name (and unit, when a :class:`~windowfinder.inputs.spec.Response` is given) for the labels.
     unit : str
         Unit for the labels when ``response`` is a plain name.
 
@@ -73,7 +73,7 @@ def loo_figure(model, y=None, response=None, unit: str = "") -> Figure:
     Leave-one-out predictions at fixed hyperparameters (Rasmussen & Williams 2006, §5.4.2). A point
     whose bar misses the diagonal is a run its model could not predict within 95 %.
     """
-    from ..diagnostics import ModelDiagnostics, diagnose
+    from windowfinder.models.diagnostics import ModelDiagnostics, diagnose
 
     name = getattr(response, "name", response)
     unit = getattr(response, "unit", unit) or unit
@@ -233,7 +233,7 @@ def influence_figure(indices, names=None) -> Figure:
     Parameters
     ----------
     indices : SobolIndices
-        From :func:`windowfinder.influence.sobol_indices` or ``model_indices``.
+        From :func:`windowfinder.answers.influence.sobol_indices` or ``model_indices``.
     names : list of str, optional
         Factor labels (default ``indices.names``).
     """

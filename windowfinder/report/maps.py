@@ -18,8 +18,8 @@ from matplotlib.colors import LogNorm
 from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Rectangle
 
-from ..errors import InputError
-from .figures import BLACK, ORANGE, VERMILLION, label, log_scale, new_figure
+from windowfinder.errors import InputError
+from windowfinder.report.figures import BLACK, ORANGE, VERMILLION, label, log_scale, new_figure
 
 GRID = 60
 _HALO = [patheffects.withStroke(linewidth=3.5, foreground="white")]
@@ -84,7 +84,7 @@ def slice_grid(spec, fit, pair, centre=None, m: int = GRID, confidence=None, mea
     fmap = None
     if spec.limited:
         if feasibility is None:
-            from ..answers import feasibility_of
+            from windowfinder.answers.results import feasibility_of
             feasibility = feasibility_of(spec, fit, mean_only)
         conf = spec.confidence if confidence is None else float(confidence)
         fmap = feasibility.evaluate(U, max(conf, 0.5 + 1e-9))

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from .page import bullets, esc, para
+from windowfinder.report.page import bullets, esc, para
 
 REFERENCES = [
     "Rasmussen, C. E. and Williams, C. K. I. (2006). Gaussian Processes for Machine Learning. MIT Press "

@@ -7,11 +7,11 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
-from ..diagnostics import COVERAGE_MIN, COVERAGE_MIN_RUNS, Q2_MIN
-from . import tables
-from .figures import figure_png, influence_figure, loo_figure, tradeoff_figure
-from .maps import map_pairs, slice_centre, slice_figure, slice_grid
-from .page import bullets, esc, html_table, image, para
+from windowfinder.models.diagnostics import COVERAGE_MIN, COVERAGE_MIN_RUNS, Q2_MIN
+from windowfinder.report import tables
+from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
+from windowfinder.report.maps import map_pairs, slice_centre, slice_figure, slice_grid
+from windowfinder.report.page import bullets, esc, html_table, image, para
 
 
 @dataclass
@@ -155,7 +155,7 @@ def maps(c: Content) -> str:
     centre = slice_centre(spec, win)
     feas = None
     if spec.limited:
-        from ..answers import feasibility_of
+        from windowfinder.answers.results import feasibility_of
         feas = feasibility_of(spec, c.fit, bool(getattr(win, "mean_only", False)))
     conf = win.confidence if win is not None else spec.confidence
     held = spec.to_natural(centre)[0]

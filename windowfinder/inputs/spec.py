@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 GOALS = ("maximize", "minimize", "target", "none")
 KINDS = ("quality", "safety")

@@ -1,6 +1,6 @@
 """Candidate settings for the next runs and the choice of one pick.
 
-The criterion of :mod:`windowfinder.nextruns` is scored on a base set (a scrambled Sobol set, or one
+The criterion of :mod:`windowfinder.nextruns.suggestions` is scored on a base set (a scrambled Sobol set, or one
 weighted towards the current window), on Gaussian perturbations around the best few, and the best is
 polished by a short Nelder-Mead search (scipy); every setting is snapped to the factor steps. A
 setting closer than ``min_distance`` to a completed run or an earlier pick of the batch is refused. A

@@ -1,4 +1,4 @@
-"""Per-response models: Gaussian process, quadratic response surface, failure model.
+"""The Gaussian-process model of one response, with its hyperparameter bounds and priors.
 
 Every model works on coded inputs ``X`` of shape ``(n, d)`` (``[0, 1]`` per factor; points outside,
 such as the axial runs of a central composite design, are accepted) and on responses in natural units.
@@ -15,12 +15,14 @@ import numpy as np
 from scipy import stats
 from scipy.linalg import cho_solve, solve_triangular
 from sklearn.exceptions import ConvergenceWarning
-from sklearn.gaussian_process import GaussianProcessClassifier, GaussianProcessRegressor
+from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponentiation, Matern, WhiteKernel
 
 from windowfinder.errors import InputError
-from windowfinder.likelihood import SUPPORTED_NU, FastOptimizer, SignalKernel
-from windowfinder.sparse import FITC, kcenter
+from windowfinder.models.base import _check_xy, _ResponseModel
+from windowfinder.models.likelihood import SUPPORTED_NU, FastOptimizer, SignalKernel
+from windowfinder.models.sparse import FITC, kcenter
+from windowfinder.models.transform import _as_transform
 
 # Hyperparameter bounds for 10-50 runs in the unit cube with standardised outputs
 # (common practice, no source):
@@ -51,7 +53,7 @@ NOISE_PRIOR = (float(np.log(1e-2)), float(np.log(10.0)))   # mean and sd of log(
 LENGTH_PRIOR = (3.0, 6.0)
 LENGTH_PRIOR_MAX_RUNS = 200
 JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (scikit-learn default)
-# Many runs (windowfinder.sparse). Above SUBSET_RUNS the optimizer restarts run on that many
+# Many runs (windowfinder.models.sparse). Above SUBSET_RUNS the optimizer restarts run on that many
 # space-filling runs; above MAX_EXACT_RUNS the model is the FITC approximation with them as inducing
 # points. Measured on one core: an exact likelihood evaluation with its gradient takes about 0.1 s at
 # 1000 runs and 0.35 s at 1500 (O(n^3)), a 500-run one about 0.02 s; held-out error of the FITC path
@@ -60,9 +62,6 @@ JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (sci
 MAX_EXACT_RUNS = 1000
 SUBSET_RUNS = 500
 
-from windowfinder.modelbase import _check_xy, _ResponseModel  # noqa: E402
-from windowfinder.quadratic import QuadraticModel, feature_names, quadratic_features  # noqa: E402,F401
-from windowfinder.transform import TRANSFORM_KINDS, Transform, _as_transform  # noqa: E402,F401
 
 class GPModel(_ResponseModel):
     """Gaussian-process model of one response (scikit-learn ``GaussianProcessRegressor``).
@@ -71,10 +70,10 @@ class GPModel(_ResponseModel):
     hyperparameters by maximum marginal likelihood with ``n_restarts`` random restarts
     (Rasmussen & Williams 2006, *Gaussian Processes for Machine Learning*, ch. 2 and 5).
     Replicated runs are kept: they inform the noise level. The likelihood and its gradient are
-    evaluated by :class:`windowfinder.likelihood.FastOptimizer` (same values as scikit-learn's, several
+    evaluated by :class:`windowfinder.models.likelihood.FastOptimizer` (same values as scikit-learn's, several
     times faster).
 
-    Many runs (see :mod:`windowfinder.sparse`): with more than ``n_subset`` runs the restarts run on
+    Many runs (see :mod:`windowfinder.models.sparse`): with more than ``n_subset`` runs the restarts run on
     ``n_subset`` runs chosen by farthest-point selection and one final optimisation on all runs starts
     from the best of them; with more than ``max_exact`` runs the hyperparameters come from that subset
     alone and predictions from all runs by the FITC approximation with the subset as inducing inputs
@@ -159,7 +158,7 @@ class GPModel(_ResponseModel):
         gp = GaussianProcessRegressor(kernel=kernel, alpha=JITTER, normalize_y=False, optimizer=opt,
                                       n_restarts_optimizer=n_restarts, random_state=self.random_state)
         with warnings.catch_warnings():
-            # hyperparameters at a bound are reported by windowfinder.diagnostics in plain words
+            # hyperparameters at a bound are reported by windowfinder.models.diagnostics in plain words
             warnings.simplefilter("ignore", ConvergenceWarning)
             gp.fit(X, ys)
         if fast:
@@ -237,7 +236,7 @@ class GPModel(_ResponseModel):
 
     def _moments(self, X, return_std, noise):
         # GP posterior (Rasmussen & Williams 2006, eqs. 2.25-2.26) with the fitted signal kernel, so the
-        # sd excludes the white-noise term unless asked for; FITC above max_exact (windowfinder.sparse)
+        # sd excludes the white-noise term unless asked for; FITC above max_exact (windowfinder.models.sparse)
         if self.sparse_ is not None:
             mean, var = self.sparse_.moments(X, return_std)
             mean = self.y_mean_ + self.y_scale_ * mean
@@ -280,7 +279,7 @@ class GPModel(_ResponseModel):
         Rasmussen & Williams (2006), §5.4.2, eqs. 5.10-5.12: with ``K`` the full training covariance
         (signal + white noise + jitter), ``mu_i = y_i - [K^-1 y]_i / [K^-1]_ii`` and
         ``sigma_i^2 = 1 / [K^-1]_ii``. The standardisation constants are held fixed too. Above
-        ``max_exact`` runs ``K`` is the FITC covariance (:meth:`windowfinder.sparse.FITC.loo`).
+        ``max_exact`` runs ``K`` is the FITC covariance (:meth:`windowfinder.models.sparse.FITC.loo`).
 
         Returns
         -------
@@ -296,139 +295,3 @@ class GPModel(_ResponseModel):
         ys = (self.z_train_ - self.y_mean_) / self.y_scale_
         mu = ys - self.gp_.alpha_ / d
         return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ / np.sqrt(d)
-
-
-class FailureModel:
-    """Probability that the process works (gives usable product) at a setting.
-
-    Gaussian-process classification with the Laplace approximation (Rasmussen & Williams 2006, §3.4),
-    scikit-learn ``GaussianProcessClassifier``, kernel ``C * Matern(2.5)`` with the same bounded length
-    scales as :class:`GPModel`. When every run worked, or every run failed, there is no boundary to
-    learn: the model returns the constant Laplace rule-of-succession estimate ``(k + 1) / (n + 2)``
-    (k runs worked out of n). The Laplace approximation costs ``O(n^3)`` per Newton step (about 8 s
-    for 500 runs on one core); with more than ``n_subset`` runs the classifier is fitted on that many
-    runs chosen by farthest-point selection (:func:`windowfinder.sparse.kcenter`) and ``note_`` says so.
-
-    Attributes
-    ----------
-    gpc_ : GaussianProcessClassifier or None
-    constant_ : float or None
-        The constant probability when the classifier is not used.
-    note_ : str
-        Empty, or how many runs the classifier was fitted on.
-    """
-
-    def __init__(self, random_state=0, n_restarts=2, n_subset=None):
-        self.random_state = random_state
-        self.n_restarts = n_restarts
-        self.n_subset = n_subset
-
-    def fit(self, X, works):
-        X = _check_xy(X)
-        works = np.asarray(works, dtype=bool).ravel()
-        if works.shape[0] != X.shape[0]:
-            raise InputError(f"{X.shape[0]} runs of factor settings but {works.shape[0]} run outcomes")
-        self.d_ = X.shape[1]
-        k, n = int(works.sum()), works.shape[0]
-        self.gpc_, self.constant_, self.note_ = None, None, ""
-        if k in (0, n):
-            self.constant_ = (k + 1.0) / (n + 2.0)
-            return self
-        m = SUBSET_RUNS if self.n_subset is None else int(self.n_subset)
-        if n > m:
-            sub = kcenter(X, m)
-            if works[sub].all() or not works[sub].any():  # keep one run of the missing outcome
-                sub = np.append(sub, np.flatnonzero(works != works[sub[0]])[0])
-            X, works = X[sub], works[sub]
-            self.note_ = (f"failure model fitted on {len(sub)} space-filling runs of {n} (classification "
-                          "cost grows with the cube of the run count)")
-        kernel = ConstantKernel(1.0, CONSTANT_BOUNDS) * Matern(
-            length_scale=np.full(self.d_, 0.5), length_scale_bounds=LENGTH_SCALE_BOUNDS, nu=2.5)
-        gpc = GaussianProcessClassifier(kernel=kernel, n_restarts_optimizer=self.n_restarts,
-                                        random_state=self.random_state)
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", ConvergenceWarning)
-            self.gpc_ = gpc.fit(X, works.astype(int))
-        return self
-
-    def predict_proba(self, X):
-        """P(process works) at each row of ``X``, shape (n,)."""
-        X = _check_xy(X, d=self.d_)
-        if self.gpc_ is None:
-            return np.full(X.shape[0], self.constant_)
-        col = list(self.gpc_.classes_).index(1)
-        return self.gpc_.predict_proba(X)[:, col]
-
-
-class Surrogates:
-    """The models of one study: one per response, plus an optional failure model.
-
-    Parameters
-    ----------
-    models : dict[str, GPModel | QuadraticModel]
-    failure : FailureModel or None
-    """
-
-    def __init__(self, models, failure=None):
-        self.models = dict(models)
-        self.failure = failure
-
-    @property
-    def names(self):
-        return list(self.models)
-
-    def __getitem__(self, name):
-        return self.models[name]
-
-    def predict(self, X, noise=False):
-        """``{response: (latent mean, latent sd)}``."""
-        return {name: m.predict(X, return_std=True, noise=noise) for name, m in self.models.items()}
-
-    def p_works(self, X):
-        """P(process works); ones when no run failed."""
-        X = _check_xy(X)
-        return np.ones(X.shape[0]) if self.failure is None else self.failure.predict_proba(X)
-
-    @classmethod
-    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0):
-        """Fit one model per response.
-
-        Parameters
-        ----------
-        X : ndarray (n, d), coded
-        Y : dict[str, ndarray (n,)]
-            Natural units, NaN where not measured (those rows are dropped for that response).
-        transforms : dict[str, (kind, bounds) | str | Transform]
-        works : bool ndarray (n,) or None
-            False for failed runs; they are left out of the response models and, when any run failed,
-            feed a :class:`FailureModel`.
-        kind : {"gp", "quadratic"}
-        """
-        if kind not in ("gp", "quadratic"):
-            raise InputError(f"model kind '{kind}' is unknown; use gp or quadratic")
-        X = _check_xy(X)
-        n = X.shape[0]
-        ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
-        if ok.shape[0] != n:
-            raise InputError(f"{n} runs of factor settings but {ok.shape[0]} run outcomes (works)")
-        transforms = transforms or {}
-        models = {}
-        for name, y in Y.items():
-            y = np.asarray(y, dtype=float).ravel()
-            if y.shape[0] != n:
-                raise InputError(f"response {name}: {y.shape[0]} values for {n} runs")
-            rows = ok & np.isfinite(y)
-            t = transforms.get(name, "none")
-            t = t if isinstance(t, (str, Transform)) else Transform(*t)
-            try:
-                if kind == "gp":
-                    m = GPModel(transform=t, n_restarts=n_restarts, random_state=seed)
-                else:
-                    m = QuadraticModel(transform=t)
-                models[name] = m.fit(X[rows], y[rows])
-            except InputError as err:
-                raise InputError(f"response {name}: {err}") from None
-        failure = None
-        if works is not None and not ok.all():
-            failure = FailureModel(random_state=seed).fit(X, ok)
-        return cls(models, failure)

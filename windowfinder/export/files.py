@@ -12,7 +12,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .runs import format_rows, write_atomic
+from windowfinder.inputs.runs import format_rows, write_atomic
 
 
 def _clean(obj):

@@ -45,7 +45,7 @@ from scipy.optimize import minimize
 from scipy.spatial import cKDTree
 from scipy.stats import qmc
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 try:  # installed with scikit-learn; without it the search runs unchanged, only slower under load
     from threadpoolctl import threadpool_limits

@@ -11,7 +11,7 @@ from __future__ import annotations
 import os
 from pathlib import Path
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 LOCK_NAME = ".windowfinder.lock"
 

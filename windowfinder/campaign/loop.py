@@ -32,11 +32,11 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .engines import check_count, make_engine
-from .evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, one_line
-from .runs import append_runs, format_rows, next_ids, read_runs, write_atomic, write_runs
-from .study import Study
+from windowfinder.errors import InputError
+from windowfinder.campaign.engines import check_count, make_engine
+from windowfinder.campaign.evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, one_line
+from windowfinder.inputs.runs import append_runs, format_rows, next_ids, read_runs, write_atomic, write_runs
+from windowfinder.study import Study
 
 AIMS = ("window", "tradeoff", "balanced")
 UNSAVED = "unsaved-runs.csv"
@@ -228,8 +228,8 @@ class Campaign:
     ----------
     evaluator : callable
         ``evaluator(run, settings, seed) -> RunOutcome``, e.g. a
-        :class:`~windowfinder.evaluators.CommandEvaluator` or
-        :class:`~windowfinder.evaluators.FunctionEvaluator`; it must be picklable for a process pool or Dask.
+        :class:`~windowfinder.campaign.evaluators.CommandEvaluator` or
+        :class:`~windowfinder.campaign.evaluators.FunctionEvaluator`; it must be picklable for a process pool or Dask.
     budget : int
         Completed (done + failed) runs runs.csv shall hold at the end; never exceeded.
     initial : int or None
@@ -396,15 +396,15 @@ class ModelProgress:
         spec = study.spec
         if self.fit_ is None or not spec.limited:
             return None
-        from .answers import feasibility_of
-        from .window import find_window
+        from windowfinder.answers.results import feasibility_of
+        from windowfinder.answers.window import find_window
 
         res = find_window(feasibility_of(spec, self.fit_).joint, spec.d, spec.confidence,
                           tolerance=spec.tolerances_coded, seed=spec.seed)
         return float(res.volume) if res.found else 0.0
 
     def front_hypervolume(self, study: Study):
-        from .hypervolume import hypervolume
+        from windowfinder.answers.hypervolume import hypervolume
 
         spec = study.spec
         if not spec.goals:
@@ -460,7 +460,7 @@ def run_campaign(study_dir, *, command: str | None = None, function=None, budget
     study_dir : path-like
         Study folder with study.toml and runs.csv (created when absent).
     command : str, optional
-        ``"PROGRAM ARGS {in} {out}"``; see :mod:`windowfinder.evaluators` for the file protocol.
+        ``"PROGRAM ARGS {in} {out}"``; see :mod:`windowfinder.campaign.evaluators` for the file protocol.
     function : str or callable, optional
         ``"module:callable"`` or a callable, ``fn(settings: dict) -> dict`` (optionally ``seed=``).
         Exactly one of ``command`` and ``function``.

@@ -23,8 +23,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from .errors import InputError
-from .spec import MAX_MAGNITUDE, StudySpec
+from windowfinder.errors import InputError
+from windowfinder.inputs.spec import MAX_MAGNITUDE, StudySpec
 
 STATUSES = ("done", "planned", "failed")
 # A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a

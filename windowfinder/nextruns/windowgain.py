@@ -34,7 +34,7 @@ import numpy as np
 
 from scipy.special import ndtr
 
-from .designs import sobol
+from windowfinder.inputs.designs import sobol
 
 N_REFERENCE = 256     # reference settings over the whole space (no window yet)
 N_LAYERS = 4          # layers of depth outside each face of the window

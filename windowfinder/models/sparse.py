@@ -2,7 +2,7 @@
 
 An exact Gaussian process costs ``O(n^3)`` time per likelihood evaluation and ``O(n^2)`` per predicted
 variance; with a thousand runs and optimizer restarts this dominates everything else. Above
-:data:`windowfinder.surrogate.MAX_EXACT_RUNS` runs the response model therefore
+:data:`windowfinder.models.gp.MAX_EXACT_RUNS` runs the response model therefore
 
 1. picks ``m`` runs spread over the design by greedy farthest-point selection (:func:`kcenter`;
    Gonzalez 1985, a 2-approximation of the k-center problem): every run lies within twice the smallest

@@ -3,7 +3,7 @@
 scikit-learn's ``GaussianProcessRegressor`` evaluates the gradient of the log marginal likelihood
 through a kernel-gradient tensor of shape ``(n, n, p)`` (one slice per hyperparameter) contracted with
 ``einsum``, and inverts the covariance with ``n`` triangular right-hand sides. For the kernel of
-:class:`windowfinder.surrogate.GPModel` the same numbers come far cheaper: the length-scale gradient
+:class:`windowfinder.models.gp.GPModel` the same numbers come far cheaper: the length-scale gradient
 needs only one ``(n, n)`` weight matrix and a matrix product with the scaled inputs, and the inverse
 comes from the Cholesky factor by LAPACK ``potri``. :class:`FastOptimizer` plugs this into
 scikit-learn as its ``optimizer`` callable (L-BFGS-B on the log hyperparameters, within the kernel's

@@ -16,7 +16,7 @@ import pandas as pd
 from scipy.spatial import cKDTree
 from scipy.stats import norm
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 CHUNK_ROWS = 20_000
 # Default extrapolation threshold: this many times the median nearest-neighbour distance between the
@@ -308,7 +308,7 @@ class Feasibility:
         return p_each, joint
 
     def joint(self, X) -> np.ndarray:
-        """Joint probability only: a ``prob_fn`` for :func:`windowfinder.window.find_window`."""
+        """Joint probability only: a ``prob_fn`` for :func:`windowfinder.answers.window.find_window`."""
         return self._chunks(X)[3]
 
     def evaluate(self, X, confidence) -> FeasibilityMap:

@@ -20,7 +20,7 @@ import numpy as np
 import pandas as pd
 from scipy.stats import qmc
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 
 @dataclass

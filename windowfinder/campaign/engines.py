@@ -12,8 +12,8 @@ import numbers
 import os
 from concurrent import futures as cf
 
-from .errors import InputError
-from .evaluators import FunctionEvaluator, one_line, stop_commands
+from windowfinder.errors import InputError
+from windowfinder.campaign.evaluators import FunctionEvaluator, one_line, stop_commands
 
 def _process_context():
     """Start method for pool workers: a fork server (one clean process, started once, with windowfinder
@@ -23,7 +23,7 @@ def _process_context():
 
     if "forkserver" in multiprocessing.get_all_start_methods():
         ctx = multiprocessing.get_context("forkserver")
-        ctx.set_forkserver_preload(["windowfinder.evaluators"])
+        ctx.set_forkserver_preload(["windowfinder.campaign.evaluators"])
         return ctx
     return multiprocessing.get_context("spawn")
 

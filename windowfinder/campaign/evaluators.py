@@ -22,7 +22,7 @@ the paths of two CSV files in a fresh temporary folder, which is also the workin
 An argument that names an existing file relative to the current folder (``python sim.py {in} {out}``)
 is made absolute, because the program runs in its temporary folder.
 
-Where evaluators run (local pools, Dask) is :mod:`windowfinder.engines`.
+Where evaluators run (local pools, Dask) is :mod:`windowfinder.campaign.engines`.
 """
 
 from __future__ import annotations
@@ -43,7 +43,7 @@ from collections.abc import Callable, Mapping, Sequence
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
-from .errors import InputError
+from windowfinder.errors import InputError
 
 NOTE_CHARS = 240  # longest note kept in runs.csv
 _EXTRA_OUT = ("run", "status", "note")

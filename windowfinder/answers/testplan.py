@@ -16,9 +16,9 @@ import numpy as np
 import pandas as pd
 from scipy.stats import qmc
 
-from .errors import InputError
-from .runs import _number, _raw_rows, next_ids
-from .spec import StudySpec
+from windowfinder.errors import InputError
+from windowfinder.inputs.runs import _number, _raw_rows, next_ids
+from windowfinder.inputs.spec import StudySpec
 
 PLAN_FILE = "testplan.csv"
 

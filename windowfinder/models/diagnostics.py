@@ -15,7 +15,7 @@ import numpy as np
 import pandas as pd
 
 from windowfinder.errors import InputError
-from windowfinder.surrogate import LENGTH_SCALE_BOUNDS, NOISE_BOUNDS
+from windowfinder.models.gp import LENGTH_SCALE_BOUNDS, NOISE_BOUNDS
 
 # Thresholds for the warnings (common practice, no source).
 Q2_MIN = 0.5
@@ -149,7 +149,7 @@ def _length_scale_checks(model, response, factor_names, factor_spans):
 
 
 def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=()):
-    """Leave-one-out diagnostics of a fitted :class:`~windowfinder.surrogate.GPModel` or ``QuadraticModel``.
+    """Leave-one-out diagnostics of a fitted :class:`~windowfinder.models.gp.GPModel` or ``QuadraticModel``.
 
     Parameters
     ----------
@@ -217,7 +217,7 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
 
 
 def diagnose_all(surrogates, factor_names=(), factor_spans=()):
-    """:func:`diagnose` for every response model of a :class:`~windowfinder.surrogate.Surrogates`."""
+    """:func:`diagnose` for every response model of a :class:`~windowfinder.models.gp.Surrogates`."""
     return [diagnose(m, None, name, factor_names, factor_spans) for name, m in surrogates.models.items()]
 
 

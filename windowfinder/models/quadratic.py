@@ -11,8 +11,8 @@ from scipy import stats
 from scipy.linalg import solve_triangular
 
 from windowfinder.errors import InputError
-from windowfinder.modelbase import _check_xy, _ResponseModel
-from windowfinder.transform import _as_transform
+from windowfinder.models.base import _check_xy, _ResponseModel
+from windowfinder.models.transform import _as_transform
 
 def feature_names(d, degree=2, names=None):
     """Names of the response-surface terms in :func:`quadratic_features` order.

@@ -1,6 +1,6 @@
 """The answers an engineer takes to scale-up, in natural units: the process window and the trade-off.
 
-This module turns the coded-unit results of :mod:`windowfinder.window` and :mod:`windowfinder.tradeoff`
+This module turns the coded-unit results of :mod:`windowfinder.answers.window` and :mod:`windowfinder.answers.tradeoff`
 into natural units with units attached, adds the predicted response ranges and the cautions, and says
 plainly when the models behind an answer should not be trusted.
 """
@@ -13,9 +13,9 @@ import numpy as np
 import pandas as pd
 from scipy.stats import qmc
 
-from .errors import InputError
-from .feasibility import Feasibility
-from .spec import StudySpec
+from windowfinder.errors import InputError
+from windowfinder.answers.feasibility import Feasibility
+from windowfinder.inputs.spec import StudySpec
 
 CAUTION_GENERAL = ("A window is a statistical estimate from limited tests, not a safety assessment; "
                    "confirm it with verification runs before relying on it.")
@@ -137,7 +137,7 @@ def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int 
 def build_window(spec: StudySpec, fit, confidence: float | None = None, set_point: dict | None = None,
                  mean_only: bool = False, seed: int | None = None) -> ProcessWindow:
     """Find the largest window and express it in natural units (see :func:`window.find_window`)."""
-    from .window import find_window
+    from windowfinder.answers.window import find_window
 
     confidence = spec.confidence if confidence is None else float(confidence)
     if not 0.0 < confidence < 1.0:
@@ -233,7 +233,7 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     Front settings are rounded to each factor's step afterwards; a rounded setting whose probability
     falls below the confidence is dropped, and the balanced pick is chosen among the rest.
     """
-    from .tradeoff import desirability, find_tradeoff, knee_point
+    from windowfinder.answers.tradeoff import desirability, find_tradeoff, knee_point
 
     confidence = spec.confidence if confidence is None else float(confidence)
     seed = spec.seed if seed is None else seed

@@ -5,8 +5,8 @@ Every run is expensive, so each proposed setting is chosen by a criterion, on co
 
 **Window** (grow and sharpen the window). A setting belongs to the window when a new run there meets
 every limit with probability at least the confidence ``c``, and the window is the largest box of such
-settings (:mod:`windowfinder.window`). With exact GP models the criterion is the expected growth of that
-window from one more run, looked ahead on the models' posterior (:mod:`windowfinder.windowgain`): the
+settings (:mod:`windowfinder.answers.window`). With exact GP models the criterion is the expected growth of that
+window from one more run, looked ahead on the models' posterior (:mod:`windowfinder.nextruns.windowgain`): the
 expected advance of each face of the current window times its area. Before any window exists, the
 expected growth of the confirmed volume anywhere. ``window_rule="grow"`` alternates the two even with
 a window in hand (to look for a larger window elsewhere) and ``"edge"`` uses the criterion below
@@ -42,11 +42,11 @@ hyperparameters) and the candidates are scored again; a feasible pick joins the 
 model is left unconditioned; settings where the process is predicted to fail (``P(works) < 0.5``) are
 not proposed while any other candidate is.
 
-**Candidates** (:mod:`windowfinder.candidates`): a scrambled Sobol set (for the window aim, half of it
+**Candidates** (:mod:`windowfinder.nextruns.candidates`): a scrambled Sobol set (for the window aim, half of it
 around the current window), perturbations around the best few and a short polish, snapped to the
 factor steps. A setting closer than ``min_distance`` to a completed run or an earlier pick is refused;
 the default ``0.05 * sqrt(d)`` is the finest length scale the models may fit (0.05 coded units per
-factor, see :mod:`windowfinder.surrogate`) taken in every factor at once: closer settings are
+factor, see :mod:`windowfinder.models.gp`) taken in every factor at once: closer settings are
 practically the same run for the model (common practice, no source). A completed run is repeated only
 when its score beats the best new setting by a factor of 2 (common practice, no source).
 
@@ -65,14 +65,14 @@ from dataclasses import dataclass, field
 import numpy as np
 import pandas as pd
 
-from .candidates import on_grid, pick
-from .designs import sobol
-from .errors import InputError
-from .feasibility import Feasibility, limit_probability
-from .hypervolume import expected_improvement, hypervolume
-from .surrogate import Surrogates
-from .window import find_window
-from .windowgain import MARGIN, WindowGain
+from windowfinder.nextruns.candidates import on_grid, pick
+from windowfinder.inputs.designs import sobol
+from windowfinder.errors import InputError
+from windowfinder.answers.feasibility import Feasibility, limit_probability
+from windowfinder.answers.hypervolume import expected_improvement, hypervolume
+from windowfinder.models.surrogates import Surrogates
+from windowfinder.answers.window import find_window
+from windowfinder.nextruns.windowgain import MARGIN, WindowGain
 
 AIMS = ("balanced", "window", "tradeoff")
 WINDOW_RULES = ("faces", "grow", "edge")
@@ -314,7 +314,7 @@ def _gain_setup(acq, base, d, tolerance, seed, snap, explore=False):
     """Window candidates for the expected-window-growth criterion, or None where it does not apply.
 
     It applies when every limited response has an exact GP model (posterior cross-covariances). The
-    current window (:func:`windowfinder.window.find_window`) fixes the faces to push; half the
+    current window (:func:`windowfinder.answers.window.find_window`) fixes the faces to push; half the
     candidates are drawn around it (the window widened by its own width on every side).
     """
     exact = all(getattr(acq.models[n], "sparse_", True) is None for n, _, _ in acq.feas_.limits_)

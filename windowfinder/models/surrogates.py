@@ -1,0 +1,86 @@
+"""The models of one study: one per response, plus the failure model."""
+
+from __future__ import annotations
+
+import numpy as np
+
+from windowfinder.errors import InputError
+from windowfinder.models.base import _check_xy
+from windowfinder.models.failure import FailureModel
+from windowfinder.models.gp import GPModel
+from windowfinder.models.quadratic import QuadraticModel
+from windowfinder.models.transform import Transform
+
+
+class Surrogates:
+    """The models of one study: one per response, plus an optional failure model.
+
+    Parameters
+    ----------
+    models : dict[str, GPModel | QuadraticModel]
+    failure : FailureModel or None
+    """
+
+    def __init__(self, models, failure=None):
+        self.models = dict(models)
+        self.failure = failure
+
+    @property
+    def names(self):
+        return list(self.models)
+
+    def __getitem__(self, name):
+        return self.models[name]
+
+    def predict(self, X, noise=False):
+        """``{response: (latent mean, latent sd)}``."""
+        return {name: m.predict(X, return_std=True, noise=noise) for name, m in self.models.items()}
+
+    def p_works(self, X):
+        """P(process works); ones when no run failed."""
+        X = _check_xy(X)
+        return np.ones(X.shape[0]) if self.failure is None else self.failure.predict_proba(X)
+
+    @classmethod
+    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0):
+        """Fit one model per response.
+
+        Parameters
+        ----------
+        X : ndarray (n, d), coded
+        Y : dict[str, ndarray (n,)]
+            Natural units, NaN where not measured (those rows are dropped for that response).
+        transforms : dict[str, (kind, bounds) | str | Transform]
+        works : bool ndarray (n,) or None
+            False for failed runs; they are left out of the response models and, when any run failed,
+            feed a :class:`FailureModel`.
+        kind : {"gp", "quadratic"}
+        """
+        if kind not in ("gp", "quadratic"):
+            raise InputError(f"model kind '{kind}' is unknown; use gp or quadratic")
+        X = _check_xy(X)
+        n = X.shape[0]
+        ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
+        if ok.shape[0] != n:
+            raise InputError(f"{n} runs of factor settings but {ok.shape[0]} run outcomes (works)")
+        transforms = transforms or {}
+        models = {}
+        for name, y in Y.items():
+            y = np.asarray(y, dtype=float).ravel()
+            if y.shape[0] != n:
+                raise InputError(f"response {name}: {y.shape[0]} values for {n} runs")
+            rows = ok & np.isfinite(y)
+            t = transforms.get(name, "none")
+            t = t if isinstance(t, (str, Transform)) else Transform(*t)
+            try:
+                if kind == "gp":
+                    m = GPModel(transform=t, n_restarts=n_restarts, random_state=seed)
+                else:
+                    m = QuadraticModel(transform=t)
+                models[name] = m.fit(X[rows], y[rows])
+            except InputError as err:
+                raise InputError(f"response {name}: {err}") from None
+        failure = None
+        if works is not None and not ok.all():
+            failure = FailureModel(random_state=seed).fit(X, ok)
+        return cls(models, failure)
