@@ -271,7 +271,10 @@ class NextRuns:
 
 
 def create_study(directory, example: str | None = None, name: str | None = None) -> Path:
-    """Create a study folder from the template or a bundled example (never overwrites)."""
+    """Create a study folder from the template or a bundled example (never overwrites).
+
+    An example brings its study.toml, README.md and example runs.csv (12 simulated space-filling runs).
+    """
     directory = Path(directory)
     target = directory / STUDY_FILE
     if target.exists():
@@ -285,8 +288,9 @@ def create_study(directory, example: str | None = None, name: str | None = None)
         src = cases.case_dir(example)
         directory.mkdir(parents=True, exist_ok=True)
         shutil.copyfile(src / STUDY_FILE, target)
-        if (src / "README.md").exists():
-            shutil.copyfile(src / "README.md", directory / "README.md")
+        for extra in ("README.md", RUNS_FILE):  # the scenario and its example runs (a space-filling start)
+            if (src / extra).exists() and not (directory / extra).exists():
+                shutil.copyfile(src / extra, directory / extra)
         return target
     directory.mkdir(parents=True, exist_ok=True)
     write_atomic(target, TEMPLATE.format(name=(name or directory.name).replace('"', "'")))

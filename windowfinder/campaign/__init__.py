@@ -1,7 +1,9 @@
-"""Closed-loop campaigns: ``evaluators`` run one run, ``engines`` say where (pools, Dask), ``loop`` runs it.
+"""Closed-loop campaigns: ``evaluators`` run one run, ``engines`` say where (pools, Dask), ``ledger`` keeps
+runs.csv, ``loop`` runs it.
 """
 
-from windowfinder.campaign.loop import (CampaignResult, CampaignStopped, RunLedger, admissible,  # noqa: F401
+from windowfinder.campaign.ledger import RunLedger, admissible  # noqa: F401
+from windowfinder.campaign.loop import (CampaignResult, CampaignStopped,  # noqa: F401
                                         run_campaign, run_seed)
 
 __all__ = ["CampaignResult", "CampaignStopped", "RunLedger", "admissible", "run_campaign", "run_seed"]
