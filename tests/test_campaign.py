@@ -391,3 +391,33 @@ def test_default_proposer_study_suggest(branin_dir):
     assert frame["x1"].between(-5, 10).all() and frame["x2"].between(0, 15).all()
     assert_branin_values(frame)
     assert res.history[-1]["source"].startswith("proposed")
+
+
+def test_run_command_on_a_bundled_case_entry(tmp_path, capsys):
+    """`windowfinder run --command "python -m windowfinder.cases.reactor {in} {out}"` (issue 14).
+
+    Expectation from outside the campaign: every recorded response equals the reactor simulator called
+    directly at the run's recorded settings with the seed the entry documents (CRC-32 of "seed:run"),
+    and runs.csv ends with exactly the budget of done runs (DESIGN.md, "runs.csv").
+    """
+    import zlib
+
+    from windowfinder import cli
+    from windowfinder.cases import load_simulator
+
+    folder = tmp_path / "reactor"
+    assert cli.main(["new", str(folder), "--example", "reactor"]) == 0
+    (folder / "runs.csv").unlink()  # start from an empty table: the campaign's own initial design
+    command = f"{sys.executable} -m windowfinder.cases.reactor {{in}} {{out}} --seed 11"
+    code = cli.main(["run", str(folder), "--command", command, "--budget", "2", "--initial", "2",
+                     "--workers", "2"])
+    assert code == 0, capsys.readouterr().err
+    study = Study.load(folder)
+    done = study.runs.done()
+    assert len(done) == 2 and len(study.runs.frame) == 2
+    sim = load_simulator("reactor")
+    for rec in done.to_dict("records"):
+        settings = {f: rec[f] for f in sim.FACTORS}
+        expected = sim.evaluate(settings, seed=zlib.crc32(f"11:{rec['run']}".encode()))
+        for name, value in expected.items():
+            assert rec[name] == pytest.approx(value, rel=1e-12, abs=1e-12)

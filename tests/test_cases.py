@@ -294,3 +294,70 @@ def _within(values, low, high):
 def _safety_responses(name):
     with open(case_dir(name) / "study.toml", "rb") as fh:
         return {r["name"] for r in tomllib.load(fh)["response"] if r["kind"] == "safety"}
+
+
+# ------------------------------------------------------------------------- example runs and the entry
+@pytest.mark.parametrize("case", CASES)
+def test_example_runs_are_the_simulators_own(case):
+    """The shipped runs.csv is exactly what the case's simulator gives for the seeded space-filling
+    start (regenerated here byte for byte), with every setting inside the study's ranges."""
+    from windowfinder.cases.examples import EXAMPLE_RUNS, example_runs_text
+    from windowfinder.inputs.runs import read_runs
+    from windowfinder.inputs.spec import StudySpec
+
+    path = case_dir(case) / "runs.csv"
+    assert path.read_text(encoding="utf-8") == example_runs_text(case)
+    spec = StudySpec.from_toml(case_dir(case) / "study.toml")
+    runs = read_runs(path, spec).frame
+    assert len(runs) == EXAMPLE_RUNS and set(runs["status"]) <= {"done", "failed"}
+    X = runs[spec.factor_names].to_numpy(float)
+    assert (X >= spec.lows).all() and (X <= spec.lows + spec.spans).all()
+
+
+def _entry(case, tmp_path, text, *extra):
+    import subprocess
+    import sys
+
+    (tmp_path / "in.csv").write_text(text, encoding="utf-8")
+    return subprocess.run([sys.executable, "-m", f"windowfinder.cases.{case}", "in.csv", "out.csv", *extra],
+                          cwd=tmp_path, capture_output=True, text=True, timeout=60)
+
+
+def test_entry_follows_the_run_protocol(tmp_path, spotweld):
+    """``python -m windowfinder.cases.spotweld IN OUT --seed N``: one output row per input row, values
+    equal to the simulator called directly with seed CRC-32("N:run"); a run the process fails
+    (expulsion at high current and long weld time, see the case README) is written as failed."""
+    import zlib
+
+    import pandas as pd
+
+    good = INTERIOR["spotweld"]
+    rows = [("A1", good), ("A2", {"current": 12.0, "weld_time": 400.0, "force": 2.0})]
+    text = "run,current,weld_time,force\n" + "".join(
+        f"{run},{s['current']},{s['weld_time']},{s['force']}\n" for run, s in rows)
+    proc = _entry("spotweld", tmp_path, text, "--seed", "4")
+    assert proc.returncode == 0, proc.stderr
+    out = pd.read_csv(tmp_path / "out.csv", dtype={"run": str})
+    assert list(out.columns) == ["run", *spotweld.RESPONSES, "status", "note"]
+    assert list(out["run"]) == ["A1", "A2"]
+    expected = spotweld.evaluate(good, seed=zlib.crc32(b"4:A1"))
+    for name, value in expected.items():
+        assert out.loc[0, name] == pytest.approx(value, rel=1e-12)
+    assert out.loc[0, "status"] == "done"
+    with pytest.raises(RunFailed):
+        spotweld.evaluate(rows[1][1], seed=zlib.crc32(b"4:A2"))
+    assert out.loc[1, "status"] == "failed" and out.loc[1, spotweld.RESPONSES].isna().all()
+
+
+def test_entry_rejects_a_bad_input_file_in_one_line(tmp_path, reactor, capsys):
+    from windowfinder.cases.entry import main
+
+    for text, words in [("run,temperature,time\nR1,80,60\n", ["catalyst"]),
+                        ("run,temperature,time,catalyst\nR1,80,sixty,1\n", ["row 2", "time"]),
+                        ("run,temperature,time,catalyst\n", ["no runs"])]:
+        (tmp_path / "in.csv").write_text(text, encoding="utf-8")
+        code = main(reactor, "reactor", [str(tmp_path / "in.csv"), str(tmp_path / "out.csv")])
+        err = capsys.readouterr().err
+        assert code == 2 and len(err.strip().splitlines()) == 1
+        assert all(w in err for w in words), err
+        assert not (tmp_path / "out.csv").exists()

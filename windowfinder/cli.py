@@ -42,8 +42,11 @@ def cmd_new(args):
 
     path = create_study(args.study_dir, example=args.example, name=args.name)
     print(f"created {path}")
-    print("next: edit the factors and responses, then 'windowfinder design "
-          f"{args.study_dir} --method space-filling --runs 12'")
+    if (path.parent / "runs.csv").exists():
+        print(f"with the example's runs.csv (simulated runs); next: 'windowfinder window {args.study_dir}'")
+    else:
+        print("next: edit the factors and responses, then 'windowfinder design "
+              f"{args.study_dir} --method space-filling --runs 12'")
 
 
 def cmd_check(args):
