@@ -240,6 +240,10 @@ def cmd_testplan(args):
     study = _load(args)
     fit = study.fit()
     win = build_window(study.spec, fit, args.confidence)
+    if not win.supported:   # nothing to verify, and that is an answer, not bad input
+        print(f"no test plan: {win.message}")
+        _print_cautions(win.cautions[:1], study.spec.has_safety)
+        return
     plan = build_testplan(study.spec, fit, win, study.runs.frame["run"], runs=args.runs)
     path = write_csv(_out(study, "testplan.csv"), plan.frame)
     print(plan.message)

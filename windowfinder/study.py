@@ -239,7 +239,8 @@ class Study:
 
         sug = suggest(fit.surrogates, limits_of(spec), [(r.name, r.goal, r.target) for r in spec.goals],
                       X_known, count, aim=aim, confidence=confidence, seed=seed, snap=snap,
-                      tolerance=spec.tolerances_coded)
+                      tolerance=spec.tolerances_coded, factor_names=spec.factor_names,
+                      study_dir=str(self.dir))
         frame = sug.to_frame(spec.factor_names,
                              to_natural=lambda U: spec.round_to_step(spec.to_natural(U)))
         frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))

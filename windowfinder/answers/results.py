@@ -15,6 +15,7 @@ from scipy.stats import qmc
 
 from windowfinder.errors import InputError
 from windowfinder.answers.feasibility import Feasibility
+from windowfinder.answers.support import support_of
 from windowfinder.inputs.spec import StudySpec
 
 CAUTION_GENERAL = ("A window is a statistical estimate from limited tests, not a safety assessment; "
@@ -99,6 +100,8 @@ class ProcessWindow:
     mean_only: bool = False
     diagnostics: list[dict] = field(default_factory=list)
     safety: bool = False
+    supported: bool = True
+    advice: str = ""
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -143,6 +146,13 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
     if not 0.0 < confidence < 1.0:
         raise InputError(f"--confidence {confidence:g}: must lie strictly between 0 and 1, e.g. 0.95")
     seed = spec.seed if seed is None else seed
+    sup = support_of(spec, fit, [r.name for r in spec.limited])
+    if not sup.supported:
+        return ProcessWindow(found=False, confidence=confidence, min_probability=0.0, factors=[],
+                             predicted=[], cautions=cautions(spec, fit, None, mean_only),
+                             message=sup.message, mean_only=mean_only,
+                             diagnostics=[d.to_dict() for d in fit.diagnostics], safety=spec.has_safety,
+                             set_point=set_point, supported=False, advice=sup.advice)
     feas = feasibility_of(spec, fit, mean_only)
     sp = None
     if set_point is not None:
@@ -211,14 +221,16 @@ class TradeoffTable:
     message: str
     confidence: float
     cautions: list[str]
+    supported: bool = True
+    advice: str = ""
 
     def to_frame(self) -> pd.DataFrame:
         return self.frame.copy()
 
     def to_dict(self) -> dict:
         return {"found": self.found, "pick_method": self.pick_method, "message": self.message,
-                "confidence": self.confidence, "cautions": self.cautions,
-                "points": self.frame.to_dict("records")}
+                "confidence": self.confidence, "cautions": self.cautions, "supported": self.supported,
+                "advice": self.advice, "points": self.frame.to_dict("records")}
 
     @property
     def pick(self) -> pd.Series | None:
@@ -238,6 +250,11 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     confidence = spec.confidence if confidence is None else float(confidence)
     seed = spec.seed if seed is None else seed
     obj_fn, names = objectives_of(spec, fit.surrogates)
+    sup = support_of(spec, fit, [r.name for r in spec.limited] + names)
+    if not sup.supported:
+        return TradeoffTable(pd.DataFrame(columns=[*spec.factor_names, "balanced_pick"]), False, pick,
+                             "no trade-off: " + sup.message, confidence,
+                             cautions(spec, fit, None, mean_only), False, sup.advice)
     prob_fn = feasibility_of(spec, fit, mean_only).joint if spec.limited else \
         (lambda X: np.ones(len(X)))
     goals = _desirability_goals(spec, fit)

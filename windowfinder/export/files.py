@@ -65,7 +65,9 @@ def window_markdown(win, study_name: str) -> str:
     out = [f"# Process window — {study_name}", ""]
     if win.safety:
         out += ["> **Caution.** " + win.cautions[0], ""]
-    if not win.found:
+    if not win.found and not getattr(win, "supported", True):
+        out += [f"**No window: the runs cannot support one.** {win.message}", ""]
+    elif not win.found:
         out += [f"**No window reaches the confidence {win.confidence:g}.** {win.message}", ""]
         if win.best_point:
             out += ["Best point found: " + ", ".join(f"{k} = {_g(v)}" for k, v in win.best_point.items())

@@ -70,6 +70,7 @@ from windowfinder.inputs.designs import sobol
 from windowfinder.errors import InputError
 from windowfinder.answers.feasibility import Feasibility, limit_probability
 from windowfinder.answers.hypervolume import expected_improvement, hypervolume
+from windowfinder.answers.support import judge_support, space_filling_batch
 from windowfinder.models.surrogates import Surrogates
 from windowfinder.answers.window import find_window
 from windowfinder.nextruns.windowgain import MARGIN, WindowGain
@@ -335,7 +336,7 @@ def _gain_setup(acq, base, d, tolerance, seed, snap, explore=False):
 
 def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence=0.95, seed=0,
             snap=None, n_candidates=None, min_distance=None, tolerance=None,
-            window_rule="faces") -> Suggestions:
+            window_rule="faces", factor_names=None, study_dir="DIR") -> Suggestions:
     """Propose ``count`` next runs (see the module docstring for the criteria).
 
     Parameters
@@ -365,6 +366,10 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
         Window runs: ``faces`` (default) push the current window's faces; ``grow`` alternates that with
         growing the confirmed volume anywhere; ``edge`` uses the misclassification criterion throughout
         (the three are compared in docs/benchmarks.md).
+    factor_names : sequence of str or None
+        For the support check's messages (default ``x1 .. xd``).
+    study_dir : str
+        Study folder named in the advice when the runs cannot support model-guided picks.
 
     Returns
     -------
@@ -376,8 +381,18 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     X_runs, d = _check(surrogates, goals, X_runs, count, aim, confidence)
     if window_rule not in WINDOW_RULES:
         raise InputError(f"suggest: window rule '{window_rule}' is unknown; use one of {', '.join(WINDOW_RULES)}")
-    acq = Acquisition(surrogates, limits, goals, X_runs, confidence, seed)
     snap = snap if snap is not None else (lambda U: U)
+    names = [n for n, _, _ in limits] + [n for n, _, _ in goals]
+    sup = judge_support(surrogates.models, names, factor_names or [f"x{j + 1}" for j in range(d)],
+                        study_dir)
+    if not sup.supported:   # no model-guided picks: a space-filling batch (windowfinder.answers.support)
+        X = space_filling_batch(X_runs, count, d, seed, snap)
+        nan = np.full(len(X), np.nan)
+        return Suggestions(X=X, aim=["space-filling"] * len(X), gain=nan, p_joint=nan.copy(),
+                           predicted={n: nan.copy() for n in surrogates.models}, advice=sup.advice,
+                           message=(f"{len(X)} space-filling runs proposed instead of model-guided ones: "
+                                    f"{sup.reason}"))
+    acq = Acquisition(surrogates, limits, goals, X_runs, confidence, seed)
     n_candidates = n_candidates or (1024 if d <= 2 else 2048 if d <= 4 else 4096)
     min_distance = 0.05 * np.sqrt(d) if min_distance is None else float(min_distance)
     base = on_grid(snap, sobol(d, n_candidates, seed))
