@@ -283,6 +283,7 @@ def test_picks_avoid_predicted_failure_region():
     model = StubModel([100.0, 0.0], 1.0)
     model.condition = lambda X, z: model
     X = sobol(2, 8, 0) * np.array([0.3, 1.0])
+    model.X_train_ = X   # the stub stands for a model fitted on these 8 runs (support check)
     s = suggest(Surrogates({"b": model}, StubFailure()), [], [("b", "maximize", None)], X, 2, n_candidates=128)
     assert np.all(s.X[:, 0] <= 0.5)
     assert "avoided" in s.message

@@ -214,6 +214,14 @@ class Study:
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
                                   self.spec.spans))
         warnings = list(self.runs.warnings)
+        ids = self.runs.completed()["run"].astype(str).to_numpy()
+        for r in self.spec.responses:
+            moved = getattr(sur.models[r.name], "at_bound_", None)
+            if moved is not None and moved.any():
+                at = ids[np.isfinite(Y[r.name])][moved]
+                warnings.append(f"{r.name}: {len(at)} value(s) exactly at a physical bound kept; the "
+                                f"{r.transform} transform fits them just inside it (runs "
+                                f"{', '.join(at[:10])}{' ...' if len(at) > 10 else ''})")
         for dg in diags:
             warnings += [f"{dg.response}: {w}" for w in dg.warnings]
         if sur.failure is not None and getattr(sur.failure, "note_", ""):

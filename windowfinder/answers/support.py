@@ -72,7 +72,7 @@ def runs_needed(d: int, distinct: int) -> int:
     return int(max(RUNS_PER_FACTOR * d - distinct, d + 2))
 
 
-def _judge_runs(X: np.ndarray, factor_names) -> tuple[str, dict]:
+def _judge_runs(X: np.ndarray, factor_names, spread_check: bool = True) -> tuple[str, dict]:
     """First failed check on the coded settings ``X`` of one response's runs ('' when all pass)."""
     d = X.shape[1]
     distinct = np.unique(X, axis=0) if len(X) else X
@@ -87,14 +87,15 @@ def _judge_runs(X: np.ndarray, factor_names) -> tuple[str, dict]:
     for j, name in enumerate(factor_names):
         if levels[j] < MIN_LEVELS:
             return f"factor '{name}' was held at one level in every run, so its effect is unknown", info
-    for j, name in enumerate(factor_names):
+    for j, name in enumerate(factor_names if spread_check else ()):
         if spread[j] < MIN_SPREAD:
             return (f"the runs span only {spread[j]:.0%} of factor '{name}''s range (at least "
                     f"{MIN_SPREAD:.0%} needed); elsewhere the model only extrapolates"), info
     return "", info
 
 
-def judge_support(models: dict, names, factor_names, study_dir: str = "DIR") -> Support:
+def judge_support(models: dict, names, factor_names, study_dir: str = "DIR",
+                  spread: bool = True) -> Support:
     """Judge whether the runs behind the models ``names`` support a claim.
 
     Parameters
@@ -107,6 +108,9 @@ def judge_support(models: dict, names, factor_names, study_dir: str = "DIR") -> 
     factor_names : sequence of str
     study_dir : str
         Study folder, for the advised command.
+    spread : bool, default True
+        Apply the spread check. Next runs skip it: model-guided picks go where the model is unsure,
+        which is what a narrow spread calls for.
 
     Returns
     -------
@@ -118,10 +122,10 @@ def judge_support(models: dict, names, factor_names, study_dir: str = "DIR") -> 
     for name in dict.fromkeys(names):
         model = models[name]
         X = np.atleast_2d(np.asarray(model.X_train_, dtype=float))
-        why, info = _judge_runs(X, factor_names)
+        why, info = _judge_runs(X, factor_names, spread)
         info["response"] = name
         checks.append(info)
-        if not why:
+        if not why and hasattr(model, "loo"):
             mu, sd = model.loo()
             bad = int(np.sum(~(np.isfinite(mu) & np.isfinite(sd))))
             if bad:
@@ -147,11 +151,12 @@ def support_of(spec, fit, names) -> Support:
 
 
 def space_filling_batch(X_known: np.ndarray, count: int, d: int, seed: int = 0, snap=None,
-                        n_candidates: int = 2048) -> np.ndarray:
+                        n_candidates: int = 2048, accept=None) -> np.ndarray:
     """``count`` coded settings, each in turn the Sobol candidate farthest from all runs and picks.
 
     Greedy maximin (Johnson, Moore & Ylvisaker 1990) over a scrambled Sobol set snapped by ``snap``;
-    with no runs yet the first pick is the candidate nearest the centre of the box.
+    with no runs yet the first pick is the candidate nearest the centre of the box. ``accept``
+    (callable (m, d) -> bool mask) restricts the candidates, unless it accepts none.
     """
     from scipy.spatial.distance import cdist
 
@@ -160,6 +165,9 @@ def space_filling_batch(X_known: np.ndarray, count: int, d: int, seed: int = 0, 
     C = sobol(d, n_candidates, seed)
     if snap is not None:
         C = np.unique(snap(C), axis=0)
+    if accept is not None:
+        ok = np.asarray(accept(C), dtype=bool)
+        C = C[ok] if ok.any() else C
     known = np.atleast_2d(np.asarray(X_known, dtype=float)) if len(X_known) else np.empty((0, d))
     picks = []
     if not len(known):

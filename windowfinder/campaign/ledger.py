@@ -118,9 +118,10 @@ class RunLedger:
 def admissible(spec, outcome: RunOutcome) -> tuple[dict, str]:
     """Response values the run table accepts, and the run's note.
 
-    A value outside the range a response's transform allows (``log``: > 0 or above its lower bound;
-    ``logit``: strictly inside its bounds) would make runs.csv unreadable; it is kept as "not measured"
-    and named in the note.
+    A value beyond the range a response's transform allows (``log``: below its lower bound, 0 by
+    default; ``logit``: outside its bounds) would make runs.csv unreadable; it is kept as "not measured"
+    and named in the note. A value exactly at a bound is recorded as measured (the models fit it just
+    inside the bound, :mod:`windowfinder.models.transform`).
     """
     values, notes = {}, [outcome.note]
     for r in spec.responses:
@@ -128,10 +129,10 @@ def admissible(spec, outcome: RunOutcome) -> tuple[dict, str]:
         if v is None:
             continue
         lo, hi = r.bounds if r.bounds else (0.0, math.inf)
-        bad = (r.transform == "logit" and not lo < v < hi) or (r.transform == "log" and not v > lo)
+        bad = (r.transform == "logit" and not lo <= v <= hi) or (r.transform == "log" and not v >= lo)
         if bad:
-            notes.append(f"{r.name} = {v:g} rejected (transform '{r.transform}' needs values inside "
-                         f"({lo:g}, {hi:g}))")
+            notes.append(f"{r.name} = {v:g} rejected (transform '{r.transform}' needs values within "
+                         f"[{lo:g}, {hi:g}])")
         else:
             values[r.name] = v
     return values, "; ".join(filter(None, notes))

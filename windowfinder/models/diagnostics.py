@@ -189,14 +189,19 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     if not ok.all():
         notes.append(f"{int((~ok).sum())} run(s) cannot be predicted from the others (each alone fixes a "
                      "model term); they are left out of these checks")
-    resid = y[ok] - median[ok]
+    # sums of squares on y / max|y|, so responses near 1e-300 (or 1e+300) neither underflow nor overflow
+    unit = float(np.max(np.abs(y[ok]))) if ok.any() else 0.0
+    unit = unit if np.isfinite(unit) and unit > 0 else 1.0
+    resid = (y[ok] - median[ok]) / unit
     press = float(resid @ resid)
-    ss_tot = float(np.sum((y[ok] - y[ok].mean()) ** 2))
+    ss_tot = float(np.sum((y[ok] / unit - np.mean(y[ok] / unit)) ** 2))
     # a constant response has no variation to explain: Q^2 is undefined (float noise of a constant
     # must not pass for variation, hence the relative tolerance)
-    scale = 1e-12 * (float(np.max(np.abs(y[ok]))) if ok.any() else 0.0)
-    q2 = 1.0 - press / ss_tot if ss_tot > max(int(ok.sum()), 1) * scale ** 2 else float("nan")
-    rmse = math.sqrt(press / max(int(ok.sum()), 1))
+    q2 = 1.0 - press / ss_tot if ss_tot > max(int(ok.sum()), 1) * 1e-24 else float("nan")
+    rmse = unit * math.sqrt(press / max(int(ok.sum()), 1))
+    if not np.isfinite(q2):
+        notes.append("leave-one-out Q^2 cannot be computed: the measured values do not vary (or too few "
+                     "runs can be predicted); the model's accuracy is unchecked")
     inside = (low[ok] <= y[ok]) & (y[ok] <= high[ok])
     coverage = float(inside.mean()) if ok.any() else float("nan")
 

@@ -172,9 +172,10 @@ class GPModel(_ResponseModel):
         if n < 2:
             raise InputError(f"a Gaussian-process model needs at least 2 measured runs, got {n}")
         self.transform_ = _as_transform(self.transform, self.bounds)
-        z = self.transform_.forward(y)
+        z, self.at_bound_ = self.transform_.measured(y)  # values at a bound kept
         self.y_mean_ = float(np.mean(z))
-        scale = float(np.std(z))
+        spread = float(np.ptp(z))  # std of z / ptp, times ptp: responses near 1e-300 do not underflow
+        scale = float(np.std(z / spread)) * spread if spread > 0 else 0.0
         notes = []
         if not np.ptp(z) > 1e-12 * float(np.max(np.abs(z))):
             scale = 1.0

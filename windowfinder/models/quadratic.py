@@ -92,7 +92,7 @@ class QuadraticModel(_ResponseModel):
                              f"got {self.degree}, {self.coding}")
         X, y = _check_xy(X, y)
         self.transform_ = _as_transform(self.transform, self.bounds)
-        z = self.transform_.forward(y)
+        z, self.at_bound_ = self.transform_.measured(y)  # values at a bound kept
         F = self._features(X)
         n, p = F.shape
         if n <= p:

@@ -3,6 +3,14 @@
 ``none`` (identity), ``log`` (positive responses spanning orders of magnitude) and ``logit`` (responses
 between two physical bounds, e.g. a yield in 0..100 %). Limits map through ``g`` exactly because ``g`` is
 monotone.
+
+A measured value exactly at a physical bound (a yield of 0 or 100 % under ``logit``, an impurity of 0 under
+``log``) is a real measurement, not an error, but ``g`` maps it to an infinite latent value. For fitting,
+:meth:`Transform.measured` moves such a value inside the bound by :func:`bound_offset`: half the smallest
+distance to that bound among the values not at it, so the value stays nearer the bound than every other
+measurement and keeps its order, or, when every value sits at the bound, :data:`BOUND_SHARE` of the span
+(common practice, no source). Values beyond a bound remain an input error. This is the one place where
+bound values are handled, so a censored-observation likelihood can later replace it.
 """
 
 from __future__ import annotations
@@ -13,6 +21,14 @@ from scipy.special import expit
 from windowfinder.errors import InputError
 
 TRANSFORM_KINDS = ("none", "log", "logit")
+BOUND_SHARE = 1e-3  # offset of bound values when no value lies off that bound: 0.1 % of the span
+
+
+def bound_offset(distances, span):
+    """Offset inside a bound: half the smallest positive ``distances`` to it, else ``BOUND_SHARE * span``."""
+    d = np.asarray(distances, dtype=float)
+    d = d[np.isfinite(d) & (d > 0)]
+    return 0.5 * float(d.min()) if d.size else BOUND_SHARE * float(span)
 
 
 class Transform:
@@ -61,6 +77,31 @@ class Transform:
             raise InputError(f"transform {self.kind}: value {y[bad].flat[0]:g} is outside its domain {dom}; "
                              "check the value, widen the bounds or use transform = \"none\"")
         return self._g(y)
+
+    def measured(self, y):
+        """Latent values of measurements, with values exactly at a bound moved inside (module notes).
+
+        Returns
+        -------
+        z : ndarray
+            ``g(y')`` where ``y'`` equals ``y`` except at a bound.
+        moved : ndarray of bool
+            True where a value sat at a bound and was moved.
+        """
+        y = np.array(y, dtype=float)
+        moved = np.zeros(y.shape, dtype=bool)
+        if self.kind != "none":
+            fin = np.isfinite(y)
+            sides = [(self.lower, 1.0)] + ([(self.upper, -1.0)] if self.kind == "logit" else [])
+            off = y[fin & (y > self.lower) & (y < self.upper)]
+            span = (self.upper - self.lower) if self.kind == "logit" else (
+                float(np.max(off - self.lower)) if off.size else 1.0)
+            for bound, sign in sides:
+                at = fin & (y == bound)
+                if at.any():
+                    y[at] = bound + sign * bound_offset(sign * (off - bound), span)
+                    moved |= at
+        return self.forward(y), moved
 
     def inverse(self, z):
         """Latent scale to natural units (``+-inf`` map to the bounds)."""

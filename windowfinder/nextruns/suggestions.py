@@ -384,9 +384,11 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     snap = snap if snap is not None else (lambda U: U)
     names = [n for n, _, _ in limits] + [n for n, _, _ in goals]
     sup = judge_support(surrogates.models, names, factor_names or [f"x{j + 1}" for j in range(d)],
-                        study_dir)
+                        study_dir, spread=False)
     if not sup.supported:   # no model-guided picks: a space-filling batch (windowfinder.answers.support)
-        X = space_filling_batch(X_runs, count, d, seed, snap)
+        works = surrogates.failure
+        X = space_filling_batch(X_runs, count, d, seed, snap, accept=None if works is None else
+                                (lambda C: np.ravel(works.predict_proba(C)) >= MIN_WORKS))
         nan = np.full(len(X), np.nan)
         return Suggestions(X=X, aim=["space-filling"] * len(X), gain=nan, p_joint=nan.copy(),
                            predicted={n: nan.copy() for n in surrogates.models}, advice=sup.advice,
