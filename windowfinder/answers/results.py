@@ -68,6 +68,9 @@ def cautions(spec: StudySpec, fit, untrusted_share: float | None = None,
         if r.has_limits and d.loo_q2 < 0.5:
             out.append(f"The model of {d.response} is poor (LOO Q2 = {d.loo_q2:.2f}): its limit is "
                        "judged mostly by wide uncertainty; add runs before trusting this window.")
+        elif r.has_limits and not np.isfinite(d.loo_q2):
+            out.append(f"The model of {d.response} could not be checked (leave-one-out Q2 undefined): "
+                       "its probabilities are unverified.")
         elif r.has_limits and d.n >= 10 and not 0.8 <= d.coverage95 <= 1.0:
             out.append(f"The 95 % intervals of {d.response} covered {d.coverage95:.0%} of held-out runs: "
                        "its probabilities are miscalibrated.")
