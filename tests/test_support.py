@@ -134,3 +134,35 @@ def test_space_filling_batch_is_greedy_maximin_brute_force():
         best = cdist(C, known).min(axis=1).max()
         assert cdist(x[None], known).min() == pytest.approx(best, rel=1e-12)
         known = np.vstack([known, x])
+
+
+def test_extrapolation_flag_is_measured_against_the_box():
+    from windowfinder.answers.feasibility import Feasibility
+
+    X = np.random.default_rng(4).random((5, 8))
+    m = GPModel(n_restarts=1).fit(X, X.sum(axis=1))
+    feas = Feasibility([("y", 1.0, None)], type("S", (), {"models": {"y": m}, "failure": None})(), X)
+    D = cdist(X, X) + np.diag(np.full(5, np.inf))
+    S = sobol(8, 512, 1)
+    nearest = cdist(S, X).min(axis=1)
+    # the runs' own spacing rule alone (2 x median spacing = 1.33 here) would flag 0.4 % of the box
+    assert np.mean(nearest > 2 * np.median(D.min(axis=1))) < 0.01
+    assert feas.extrapolation_distance_ == 0.5     # half a factor's range (common practice, no source)
+    fmap = feas.evaluate(S, 0.95)
+    np.testing.assert_array_equal(fmap.distance > 0.5, nearest > 0.5)  # brute force (scipy cdist)
+    assert fmap.share_untrusted > 0.9
+
+
+def test_window_far_from_every_run_is_not_claimed(tmp_path):
+    # 12 space-filling runs in 8 factors pass the design checks, but y = sum of the factors is 0 at
+    # the origin while the model's prior there says 3.9 +- 0.86: a window, if any, must truly meet
+    # y >= 1 at its lowest corner (closed form: the sum of the lower ends)
+    d = sum_study(tmp_path, maximin_latin_hypercube(8, 12, seed=1))
+    study = Study.load(d)
+    fit = study.fit(n_restarts=1)
+    for mean in (False, True):
+        win = build_window(study.spec, fit, mean_only=mean)
+        if win.found:
+            assert sum(f["guard_low"] for f in win.factors) >= 1.0
+        else:
+            assert not win.supported and "from every run" in win.message and "--runs 68" in win.advice

@@ -25,6 +25,25 @@ CHUNK_ROWS = 20_000
 # one median would flag half of the space between the runs; two medians flag only 0.5^(2^d) of it
 # (6 % in 2-D) while points well outside the cloud of runs stay flagged.
 EXTRAPOLATION_FACTOR = 2.0
+# ... measured against the whole box, not only against the runs' cloud: never more than half of a
+# factor's range (coded 0.5). A few runs scattered over many factors are far from one another, and two
+# of their spacings reach past most of the box (5 random runs in 8 factors: 1.33 coded units, which
+# flagged 0.4 % of the box, against 99 % farther than 0.5 from every run); a point with no run within
+# half a factor's range is extrapolation whatever the runs' spacing (common practice, no source).
+EXTRAPOLATION_MAX = 0.5
+
+
+def extrapolation_threshold(runs) -> float:
+    """Default extrapolation distance for distinct coded runs ``(n, d)``: ``min(2 * median spacing, 0.5)``.
+
+    :data:`EXTRAPOLATION_FACTOR` times the median nearest-neighbour distance between the runs, at most
+    :data:`EXTRAPOLATION_MAX`; 0 with fewer than two runs.
+    """
+    runs = np.atleast_2d(np.asarray(runs, dtype=float))
+    if len(runs) < 2:
+        return 0.0
+    spacing = np.median(cKDTree(runs).query(runs, k=2)[0][:, 1])
+    return float(min(EXTRAPOLATION_FACTOR * spacing, EXTRAPOLATION_MAX))
 
 
 def limit_probability(mu, sd, lo=None, hi=None) -> np.ndarray:
@@ -158,8 +177,9 @@ class Feasibility:
         A point farther than this (Euclidean, coded units) from every run is flagged as extrapolation.
         None: :data:`EXTRAPOLATION_FACTOR` (2) times the median nearest-neighbour distance between the
         distinct runs, i.e. a point counts as extrapolated when it is clearly farther from all data than
-        the runs typically are from one another. Fewer than two distinct runs give 0 (everything off a
-        run is flagged).
+        the runs typically are from one another, but at most :data:`EXTRAPOLATION_MAX` (0.5, half a
+        factor's range: the flag is measured against the box too). Fewer than two distinct runs give 0
+        (everything off a run is flagged).
     spread_ratio : float, default 0.5
         A point is flagged "unsure" for a limit when the model's own sd (without run-to-run noise,
         latent scale) exceeds ``spread_ratio * s``, where ``s`` is the limit span ``g(hi) - g(lo)`` for a
@@ -230,11 +250,8 @@ class Feasibility:
         self.tree_ = cKDTree(runs) if len(runs) else None
         if self.extrapolation_distance is not None:
             self.extrapolation_distance_ = float(self.extrapolation_distance)
-        elif len(runs) >= 2:
-            spacing = np.median(self.tree_.query(runs, k=2)[0][:, 1])
-            self.extrapolation_distance_ = float(EXTRAPOLATION_FACTOR * spacing)
         else:
-            self.extrapolation_distance_ = 0.0
+            self.extrapolation_distance_ = extrapolation_threshold(runs) if len(runs) else 0.0
         self.spread_scale_ = np.array([self._spread_scale(models[n], lo, hi, X_runs)
                                        for n, lo, hi in self.limits_])
 

@@ -11,11 +11,12 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import pandas as pd
+from scipy.spatial.distance import cdist
 from scipy.stats import qmc
 
 from windowfinder.errors import InputError
-from windowfinder.answers.feasibility import Feasibility
-from windowfinder.answers.support import support_of
+from windowfinder.answers.feasibility import Feasibility, extrapolation_threshold
+from windowfinder.answers.support import judge_extent, runs_needed, study_folder, support_of
 from windowfinder.inputs.spec import StudySpec
 
 CAUTION_GENERAL = ("A window is a statistical estimate from limited tests, not a safety assessment; "
@@ -187,7 +188,16 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                for f, a, b, c, e in zip(spec.factors, lo_n, hi_n, glo_n, ghi_n)]
     glo, ghi = spec.to_coded(glo_n)[0], spec.to_coded(ghi_n)[0]
     inside = glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512) * (ghi - glo)
-    share = float(feas.evaluate(inside, max(confidence, 0.5 + 1e-9)).untrusted.mean())
+    fmap = feas.evaluate(inside, max(confidence, 0.5 + 1e-9))
+    share = float(fmap.untrusted.mean())
+    extent = judge_extent(float(np.mean(fmap.distance > fmap.extrapolation_distance)),
+                          fmap.extrapolation_distance, spec.d, len(np.unique(fit.X_runs, axis=0)),
+                          study_dir=study_folder(spec))
+    if not extent.supported:
+        return ProcessWindow(found=False, min_probability=float(res.min_probability), factors=[],
+                             predicted=[], cautions=cautions(spec, fit, share, mean_only),
+                             message=extent.message, untrusted_share=share, supported=False,
+                             advice=extent.advice, **common)
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
                          cautions=cautions(spec, fit, share, mean_only), message=res.message,
@@ -274,7 +284,9 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
         X = X[np.sort(first)]
     U = spec.to_coded(X) if len(X) else np.empty((0, spec.d))
     p = prob_fn(U) if len(U) else np.empty(0)
-    keep = p >= confidence
+    runs = np.unique(fit.X_runs, axis=0)   # settings far from every run: no claim (answers.support)
+    far = cdist(U, runs).min(axis=1) > extrapolation_threshold(runs) if len(U) else np.zeros(0, bool)
+    keep = (p >= confidence) & ~far
     X, U, p = X[keep], U[keep], p[keep]
     frame = pd.DataFrame(X, columns=spec.factor_names)
     chosen = -1
@@ -289,14 +301,25 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     if found:
         message = (f"{len(frame)} settings on the trade-off front meet all limits with probability "
                    f">= {confidence:g}; balanced pick by {res.pick_method}")
-        if (~keep).any():
-            message += f" ({int((~keep).sum())} dropped after rounding to the factor steps)"
+        if (~keep & ~far).any():
+            message += f" ({int((~keep & ~far).sum())} dropped after rounding to the factor steps)"
+        if far.any():
+            message += (f" ({int(far.sum())} dropped: farther than {extrapolation_threshold(runs):.2g} "
+                        "coded units from every run)")
+    elif res.found and far.all():
+        n = runs_needed(spec.d, len(runs))
+        message = (f"no trade-off: the runs do not support it: every setting on the front is farther than "
+                   f"{extrapolation_threshold(runs):.2g} coded units from every run; run a space-filling "
+                   f"design of {n} runs: windowfinder design {study_folder(spec)} --method space-filling "
+                   f"--runs {n}")
     elif res.found:
         message = "no setting on the step grid keeps the confidence; refine the factor steps"
     else:
         message = res.message
+    unsupported = bool(res.found and len(far) and far.all())
     return TradeoffTable(frame, found, res.pick_method, message, confidence,
-                         cautions(spec, fit, None, mean_only))
+                         cautions(spec, fit, None, mean_only), not unsupported,
+                         message.rsplit("; ", 1)[-1] if unsupported else "")
 
 
 def _median(model, X):

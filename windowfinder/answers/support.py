@@ -13,7 +13,12 @@ run instead. The checks (coded settings, per response with the runs where it was
 * **spread** the runs span at least :data:`MIN_SPREAD` of every factor's range (coded 0..1): beyond the
   runs' span along a factor the model only extrapolates (common practice, no source);
 * **leave-one-out** every run can be predicted from the others (finite leave-one-out prediction,
-  Rasmussen & Williams 2006, §5.4.2), so the model's accuracy can be checked at all.
+  Rasmussen & Williams 2006, §5.4.2), so the model's accuracy can be checked at all;
+* **extent** (:func:`judge_extent`, after the search) at most :data:`MAX_FAR_SHARE` of the found window
+  lies farther from every run than the extrapolation distance measured against the box: there a
+  model shows only its prior, whose spread comes from the runs' spread (in eight factors, ten runs of
+  y = the factors' sum have an sd of 0.9 while y spans 0..8 over the box, and the whole box was claimed
+  at P = 0.98 though y = 0 at the origin).
 
 Where the runs do not support a claim, the advice is a space-filling design of
 ``N = max(10 d - k, d + 2)`` runs, ``k`` the distinct settings already run: the ``n = 10 d`` rule for the
@@ -33,6 +38,7 @@ import numpy as np
 MIN_SPREAD = 0.5     # runs must span at least half of every factor's range (common practice, no source)
 MIN_LEVELS = 2       # distinct levels per factor
 RUNS_PER_FACTOR = 10  # Loeppky, Sacks & Welch (2009): n = 10 d
+MAX_FAR_SHARE = 0.5   # most of a window far from every run: not supported (common practice, no source)
 
 
 @dataclass
@@ -142,12 +148,34 @@ def judge_support(models: dict, names, factor_names, study_dir: str = "DIR",
     return Support(False, reason, advice, n, checks)
 
 
-def support_of(spec, fit, names) -> Support:
-    """:func:`judge_support` for a study's fitted models (``fit.surrogates.models``)."""
+def judge_extent(far_share: float, threshold: float, d: int, distinct: int, what: str = "window",
+                 study_dir: str = "DIR") -> Support:
+    """Whether a found region rests on runs: at most :data:`MAX_FAR_SHARE` of it may be far from every run.
+
+    ``far_share`` is the share of settings inside the region farther than ``threshold`` (the
+    extrapolation distance of :class:`~windowfinder.answers.feasibility.Feasibility`, measured against
+    the box) from every run. There the models show only their prior, so a probability near 1 is not
+    constrained by any run.
+    """
+    if far_share <= MAX_FAR_SHARE:
+        return Support(True)
+    n = runs_needed(d, distinct)
+    return Support(False, f"{far_share:.0%} of the best {what} is farther than {threshold:.2g} coded units "
+                          "from every run, where the models only extrapolate",
+                   f"run a space-filling design of {n} runs: windowfinder design {study_dir} --method "
+                   f"space-filling --runs {n}", n)
+
+
+def study_folder(spec) -> str:
+    """The study folder for the advised command ('DIR' when the spec was not read from a file)."""
     from pathlib import Path
 
-    folder = str(Path(spec.source).parent) if spec.source and spec.source != "study.toml" else "DIR"
-    return judge_support(fit.surrogates.models, names, spec.factor_names, folder)
+    return str(Path(spec.source).parent) if spec.source and spec.source != "study.toml" else "DIR"
+
+
+def support_of(spec, fit, names) -> Support:
+    """:func:`judge_support` for a study's fitted models (``fit.surrogates.models``)."""
+    return judge_support(fit.surrogates.models, names, spec.factor_names, study_folder(spec))
 
 
 def space_filling_batch(X_known: np.ndarray, count: int, d: int, seed: int = 0, snap=None,
