@@ -66,3 +66,8 @@ def random_proposer(study, count: int, aim: str):
     rng = np.random.default_rng(len(study.runs.frame))
     U = rng.uniform(-0.1, 1.1, size=(count, study.spec.d))
     return pd.DataFrame(study.spec.to_natural(U), columns=study.spec.factor_names)
+
+
+def saturating_yield(settings: dict) -> dict:
+    """A yield in % that saturates at its physical bounds: 0 below x1 = 0.25, 100 above x1 = 0.75."""
+    return {"yield": min(100.0, max(0.0, 200.0 * settings["x1"] - 50.0))}

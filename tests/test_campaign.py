@@ -424,3 +424,24 @@ def test_run_command_on_a_bundled_case_entry(tmp_path, capsys):
         expected = sim.evaluate(settings, seed=zlib.crc32(f"11:{rec['run']}".encode()))
         for name, value in expected.items():
             assert rec[name] == pytest.approx(value, rel=1e-12, abs=1e-12)
+
+
+def test_simulator_values_at_a_physical_bound_are_recorded_in_their_cells(tmp_path, monkeypatch):
+    # a yield of exactly 0 or 100 % returned by a simulator is a measurement: it goes into the response
+    # cell (formerly blank, with the value only in the note) and the fit keeps it (models.transform)
+    d = tmp_path / "bounded"
+    d.mkdir()
+    (d / "study.toml").write_text('[study]\nname = "b"\nseed = 4\n\n[[factor]]\nname = "x1"\nlow = 0.0\n'
+                                  'high = 1.0\n\n[[factor]]\nname = "x2"\nlow = 0.0\nhigh = 1.0\n\n'
+                                  '[[response]]\nname = "yield"\nunit = "%"\ngoal = "maximize"\nmin = 50.0\n'
+                                  'transform = "logit"\nbounds = [0, 100]\n')
+    monkeypatch.syspath_prepend(str(TESTS))
+    run_campaign(d, function="campaign_helpers:saturating_yield", budget=8, initial=8, workers=1,
+                 progress=quiet)
+    frame = table(d)
+    expect = np.clip(200.0 * frame["x1"].to_numpy() - 50.0, 0.0, 100.0)   # the function, recomputed
+    np.testing.assert_allclose(frame["yield"].to_numpy(), expect, rtol=1e-12)
+    assert ((expect == 0) | (expect == 100)).any() and not frame["note"].fillna("").str.contains(
+        "rejected").any()
+    fit = Study.load(d).fit(n_restarts=1)
+    assert any("exactly at a physical bound kept" in w for w in fit.warnings)
