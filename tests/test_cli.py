@@ -156,3 +156,41 @@ def test_textbook_ccd_check_fit_window_testplan(montgomery, capsys):
 
     code, _, _ = run(["window", montgomery, "--confidence", "0.95"], capsys)
     assert code == 0  # found or not, this is an answer, not an error
+
+
+def test_textbook_ccd_model_choice_and_mean_window(montgomery, capsys):
+    # Montgomery (2013) §11.3 publishes a quadratic model for yield and viscosity and a first-order one
+    # for molecular weight (from memory). model = "auto" (the default) must pick a polynomial wherever
+    # one beats the Gaussian process on leave-one-out, and the process-mean window at confidence 0.5
+    # must lie where the published models meet every limit.
+    code, out, _ = run(["fit", montgomery], capsys)
+    assert code == 0
+    fit = json.loads((montgomery / "out" / "fit.json").read_text())
+    by = {r["response"]: r for r in fit["responses"]}
+    for name, r in by.items():
+        c = r["choice"]
+        assert c["requested"] == "auto" and f"{name}: LOO log density" in out
+        best_poly = max(v for k, v in c["scores"].items() if k != "gp")
+        assert (c["chosen"] != "gp") == (best_poly > c["scores"]["gp"])
+        assert c["scores"][c["chosen"]] == max(c["scores"].values())
+        assert bool(r["terms"]) == (c["chosen"] != "gp")
+    assert by["yield"]["choice"]["chosen"] == "quadratic"       # beats the GP clearly on this design
+    assert [t["term"] for t in by["yield"]["terms"]][:3] == ["1", "time", "temperature"]
+
+    code, out, _ = run(["window", montgomery, "--mean", "--confidence", "0.5"], capsys)
+    win = json.loads((montgomery / "out" / "window.json").read_text())
+    assert code == 0 and win["found"] and win["min_probability"] >= 0.5
+    (t0, t1), (T0, T1) = [(f["low"], f["high"]) for f in win["factors"]]
+    tt, TT = np.meshgrid(np.linspace(t0, t1, 15), np.linspace(T0, T1, 15))
+    yld, visc, mw = published_models(tt, TT)
+    assert ((yld >= 78.5) & (visc >= 62) & (visc <= 68) & (mw <= 3400)).all()
+
+    # the model setting lives in study.toml, so that every verb uses it; --model is refused, exit 2
+    code, _, err = run(["fit", montgomery, "--model", "quadratic"], capsys)
+    assert code == 2 and "study.toml" in err and err.strip().count("\n") == 0
+    toml = (montgomery / "study.toml").read_text().replace('goal = "none"', 'goal = "none"\nmodel = "linear"')
+    (montgomery / "study.toml").write_text(toml)
+    from windowfinder import Study
+    res = Study.load(montgomery).fit()
+    assert res.surrogates.models["mw"].kind == "linear"
+    assert [t["term"] for t in res.diagnostics[2].terms] == ["1", "time", "temperature"]

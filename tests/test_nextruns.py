@@ -303,3 +303,17 @@ def test_window_rules_contract():
             assert s.gain[0] == pytest.approx(expected, abs=1e-12)
     with pytest.raises(InputError, match="window rule"):
         suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", window_rule="sideways")
+
+
+def test_polynomial_models_fall_back_to_the_edge_criterion():
+    # the window-growth look-ahead needs GP cross-covariances; with a least-squares polynomial the
+    # documented fallback (module docstring) is the edge rule: the first gain is the misclassification
+    # probability of the unconditioned models at that pick (contract, no external source)
+    X = sobol(2, 14, 5)
+    S = Surrogates.fit_arrays(X, {"a": quadratic_response(X, np.array([0.4, 0.5]))}, kind="quadratic")
+    assert S.models["a"].kind == "quadratic" and S.choices["a"].chosen == "quadratic"
+    limits = [("a", None, 0.08)]
+    s = suggest(S, limits, [], X, 2, aim="window", n_candidates=128)
+    assert s.X.shape == (2, 2) and np.all((s.X >= 0) & (s.X <= 1))
+    expected = Acquisition(S, limits, [], X, seed=0).window(s.X[:1])[0][0]
+    assert s.gain[0] == pytest.approx(expected, abs=1e-12)

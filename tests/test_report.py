@@ -21,6 +21,7 @@ import pytest
 from matplotlib.contour import ContourSet
 from matplotlib.patches import Rectangle
 from scipy.stats import norm
+from scipy.stats import t as t_dist
 
 from windowfinder.answers import build_tradeoff, build_window
 from windowfinder.cases import case_dir, load_simulator

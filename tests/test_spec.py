@@ -23,6 +23,8 @@ def test_parses_factors_and_responses():
     assert spec.confidence == 0.9 and spec.seed == 3
     assert spec.limited[0].name == "exotherm"  # safety limits come first
     assert spec.factor("temperature").tolerance == 1.0
+    assert [r.model for r in spec.responses] == ["auto", "auto"]   # default: chosen by leave-one-out
+    assert parse(STUDY.replace('unit = "%"', 'unit = "%"\nmodel = "linear"')).response("yield").model == "linear"
 
 
 def test_coded_natural_round_trip():
@@ -59,6 +61,7 @@ BAD = [
     (STUDY.replace('goal = "maximize"', 'goal = "maximise"'), ["maximize"]),
     (STUDY.replace("seed = 3", "seed = -1"), ["seed"]),
     (STUDY.replace("low = 40.0", 'low = "forty"'), ["low", "number"]),
+    (STUDY.replace('unit = "%"', 'unit = "%"\nmodel = "quadratc"'), ["model", "quadratic"]),
 ]
 
 

@@ -79,10 +79,14 @@ def cmd_design(args):
 
 
 def cmd_fit(args):
+    if args.model is not None:
+        raise InputError(f"fit: --model is set per response in study.toml now, so that every verb uses "
+                         f"it: add model = \"{args.model}\" (auto | gp | quadratic | linear) to each "
+                         "[[response]]")
     study = _load(args)
     print(f"fitting {len(study.spec.responses)} models on {len(study.runs.completed())} runs ...",
           file=sys.stderr)
-    res = study.fit(kind=args.model, n_restarts=args.restarts)
+    res = study.fit(n_restarts=args.restarts)
     _warn(res.warnings)
     path = _out(study, "fit.json")
     from windowfinder.inputs.runs import write_atomic
@@ -94,6 +98,8 @@ def cmd_fit(args):
 
 def format_diagnostics(res, spec) -> str:
     """Plain-text diagnostics table: one line per response."""
+    from windowfinder.models.choice import ModelChoice
+
     lines = [f"{'response':<16} {'model':<9} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>12} {'cover95':>8}  "
              "length scales (factor units)"]
     for d in res.diagnostics:
@@ -101,6 +107,14 @@ def format_diagnostics(res, spec) -> str:
         ls = ", ".join(f"{k}={v:.3g}" for k, v in d.length_scales.items()) or "-"
         lines.append(f"{d.response:<16} {d.model:<9} {d.n:>3} {d.loo_q2:>7.2f} "
                      f"{d.loo_rmse:>8.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
+    for d in res.diagnostics:
+        if d.choice:
+            lines.append(f"{d.response}: " + ModelChoice.from_dict(d.choice).text())
+        if d.terms:
+            lines.append(f"  {'term':<24} {'coefficient':>12} {'std error':>10} {'t':>8} {'p':>8}"
+                         "   (latent scale, coded units: low/high at -1/+1)")
+            lines += [f"  {t['term']:<24} {t['coefficient']:>12.4g} {t['std_error']:>10.3g} "
+                      f"{t['t']:>8.2f} {t['p_value']:>8.3g}" for t in d.terms]
     return "\n".join(lines)
 
 
@@ -296,7 +310,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="extra replicated centre runs (default 1 for box-behnken and rotatable ccd, else 0)")
     s.add_argument("--seed", type=int, help="random seed (default: the study's)")
     s = verb("fit", cmd_fit, "fit one model per response and print leave-one-out diagnostics")
-    s.add_argument("--model", default="gp", choices=("gp", "quadratic"))
+    s.add_argument("--model", help=argparse.SUPPRESS)  # moved to study.toml; refused with a pointer
     s.add_argument("--restarts", type=int, default=5, help="optimizer restarts for the GP")
     s = verb("window", cmd_window, "find the largest window where every limit holds with confidence")
     s.add_argument("--confidence", type=float, help="default: the study's confidence")

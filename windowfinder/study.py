@@ -188,31 +188,38 @@ class Study:
         Y = {r: np.where(works, comp[r].to_numpy(dtype=float), np.nan) for r in self.spec.response_names}
         return X, Y, works
 
-    def fit(self, kind: str = "gp", n_restarts: int = 5) -> FitResult:
-        """Fit one model per response (and a failure model when runs failed); LOO diagnostics."""
+    def fit(self, kind: str | None = None, n_restarts: int = 5) -> FitResult:
+        """Fit one model per response (and a failure model when runs failed); LOO diagnostics.
+
+        ``kind=None`` (what every verb uses) takes each response's ``model`` from study.toml (default
+        ``auto``: the best of Gaussian process, full quadratic and reduced polynomial by leave-one-out,
+        :mod:`windowfinder.models.choice`); a string overrides it for every response.
+        """
         from windowfinder.models.diagnostics import diagnose
         from windowfinder.models.surrogates import Surrogates
 
         X, Y, works = self.training_data()
+        kinds = {r.name: r.model if kind is None else kind for r in self.spec.responses}
+        d = self.spec.d
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
-            need = 3 if kind == "gp" else (self.spec.d + 1) * (self.spec.d + 2) // 2 + 1
+            need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)
             if n < need:
                 raise InputError(f"{self.runs_path.name}: response '{r.name}' has {n} measured runs; "
-                                 f"fitting a {kind} model needs at least {need}; add runs first "
+                                 f"fitting a {kinds[r.name]} model needs at least {need}; add runs first "
                                  "(windowfinder design)")
         from threadpoolctl import threadpool_limits
 
         transforms = {r.name: (r.transform, r.bounds) for r in self.spec.responses}
         with threadpool_limits(1, user_api="blas"):  # small matrices: threads cost more than they give
             sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
-                                        kind=kind, n_restarts=n_restarts, seed=self.spec.seed)
+                                        kind=kinds, n_restarts=n_restarts, seed=self.spec.seed)
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
             y = y[np.isfinite(y)]
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
-                                  self.spec.spans))
+                                  self.spec.spans, choice=sur.choices.get(r.name)))
         warnings = list(self.runs.warnings)
         ids = self.runs.completed()["run"].astype(str).to_numpy()
         for r in self.spec.responses:

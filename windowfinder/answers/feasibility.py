@@ -1,6 +1,7 @@
 """Probability that a run meets every limit, and where the models can be trusted.
 
-For each limited response the fitted model gives a normal predictive distribution on its latent scale;
+For each limited response the fitted model gives a normal predictive distribution on its latent scale
+(Student t for a least-squares polynomial, whose ``dof_`` says with how many degrees of freedom);
 a limit ``lo <= Y <= hi`` in natural units becomes ``g(lo) <= Z <= g(hi)`` on that scale (``g`` is the
 response's monotone transform), so the probability of meeting it is a difference of two normal
 distribution functions. The joint probability multiplies these over the limited responses and, when a
@@ -15,6 +16,7 @@ import numpy as np
 import pandas as pd
 from scipy.spatial import cKDTree
 from scipy.stats import norm
+from scipy.stats import t as t_dist
 
 from windowfinder.errors import InputError
 
@@ -46,8 +48,8 @@ def extrapolation_threshold(runs) -> float:
     return float(min(EXTRAPOLATION_FACTOR * spacing, EXTRAPOLATION_MAX))
 
 
-def limit_probability(mu, sd, lo=None, hi=None) -> np.ndarray:
-    """Probability that a normal variable lies between two limits.
+def limit_probability(mu, sd, lo=None, hi=None, dof=None) -> np.ndarray:
+    """Probability that a normal (or location-scale Student-t) variable lies between two limits.
 
     Parameters
     ----------
@@ -56,6 +58,10 @@ def limit_probability(mu, sd, lo=None, hi=None) -> np.ndarray:
         point mass: the result is the indicator ``lo <= mu <= hi``.
     lo, hi : float or array_like or None
         Lower and upper limit; ``None`` leaves that side open.
+    dof : int or None
+        With degrees of freedom, ``(Y - mu) / sd`` is Student t instead of standard normal: the
+        predictive of a least-squares model, whose ``sd`` uses the estimated ``s^2`` (Montgomery 2013,
+        §10.6). ``sd`` is then the t scale, not the standard deviation.
 
     Returns
     -------
@@ -75,7 +81,8 @@ def limit_probability(mu, sd, lo=None, hi=None) -> np.ndarray:
     scale = np.where(spread, sd, 1.0)
     a = (lo - mu) / scale
     b = (hi - mu) / scale
-    p = np.where(a > 0, norm.sf(a) - norm.sf(b), norm.cdf(b) - norm.cdf(a))
+    dist = norm if dof is None else t_dist(dof)
+    p = np.where(a > 0, dist.sf(a) - dist.sf(b), dist.cdf(b) - dist.cdf(a))
     p = np.where(spread, p, ((mu >= lo) & (mu <= hi)).astype(float))
     return np.clip(p, 0.0, 1.0)
 
@@ -290,7 +297,7 @@ class Feasibility:
                     sdm = sd if self.mean_only else models[name].predict(X, return_std=True, noise=False)[1]
                 cache[name] = (np.asarray(mu, float), np.asarray(sd, float), sdm)
             mu, sd, sdm = cache[name]
-            p_each[:, k] = limit_probability(mu, sd, lo, hi)
+            p_each[:, k] = limit_probability(mu, sd, lo, hi, getattr(models[name], "dof_", None))
             if with_model_sd:
                 sd_model[:, k] = sdm
         p_works = None

@@ -21,11 +21,12 @@ from windowfinder.errors import InputError
 GOALS = ("maximize", "minimize", "target", "none")
 KINDS = ("quality", "safety")
 TRANSFORMS = ("none", "log", "logit")
+MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.models.choice)
 RESERVED = ("run", "status", "note")
 
 STUDY_KEYS = ("name", "confidence", "seed", "description")
 FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
-RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds")
+RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds", "model")
 TOP_KEYS = ("study", "factor", "response")
 # Largest magnitude accepted for a number in the study file: far beyond any physical quantity in sensible
 # units, and small enough that squares and differences of such numbers stay finite in float64
@@ -96,6 +97,7 @@ class Response:
     kind: str = "quality"
     transform: str = "none"
     bounds: tuple[float, float] | None = None
+    model: str = "auto"
 
     @property
     def has_limits(self) -> bool:
@@ -351,6 +353,7 @@ class _Parser:
             self.fail(where, f"target given but goal = '{goal}'; set goal = 'target' or drop target")
         kind = self.text(t, "kind", where, default="quality", choices=KINDS)
         transform = self.text(t, "transform", where, default="none", choices=TRANSFORMS)
+        model = self.text(t, "model", where, default="auto", choices=MODELS)
         bounds = t.get("bounds")
         if bounds is not None:
             ok = (isinstance(bounds, list) and len(bounds) == 2
@@ -373,4 +376,4 @@ class _Parser:
         if target is not None and ((lo is not None and target < lo) or (hi is not None and target > hi)):
             self.fail(where, f"target = {target:g} lies outside the limits")
         return Response(name=name, unit=self.text(t, "unit", where), goal=goal, min=lo, max=hi,
-                        target=target, kind=kind, transform=transform, bounds=bounds)
+                        target=target, kind=kind, transform=transform, bounds=bounds, model=model)

@@ -36,7 +36,7 @@ class ModelDiagnostics:
     Attributes
     ----------
     response : str
-    model : {"gp", "quadratic"}
+    model : {"gp", "quadratic", "linear", "reduced"}
     n : int
         Runs the model was fitted on.
     loo_q2 : float
@@ -71,12 +71,19 @@ class ModelDiagnostics:
     loo_median: list = field(default_factory=list)
     loo_low: list = field(default_factory=list)
     loo_high: list = field(default_factory=list)
+    choice: dict = field(default_factory=dict)
+    terms: list = field(default_factory=list)
 
     def to_dict(self):
         """JSON-safe dict (NaN and infinities become None)."""
         out = asdict(self)
         for key, value in out.items():
-            if isinstance(value, float):
+            if key == "choice":
+                continue
+            if key == "terms":
+                out[key] = [{k: v if k == "term" else _json_number(v) for k, v in row.items()}
+                            for row in value]
+            elif isinstance(value, float):
                 out[key] = _json_number(value)
             elif isinstance(value, list) and key != "warnings":
                 out[key] = [_json_number(v) for v in value]
@@ -148,7 +155,7 @@ def _length_scale_checks(model, response, factor_names, factor_spans):
     return scales, notes
 
 
-def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=()):
+def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=(), choice=None):
     """Leave-one-out diagnostics of a fitted :class:`~windowfinder.models.gp.GPModel` or ``QuadraticModel``.
 
     Parameters
@@ -162,6 +169,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
         Factor names in column order (used for GP length scales).
     factor_spans : sequence of float
         ``high - low`` per factor, to express length scales in factor units.
+    choice : ModelChoice or None
+        Recorded as ``choice`` (its notes join the warnings).
 
     Returns
     -------
@@ -213,12 +222,17 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
                      "their 95% leave-one-out interval")
     scales, ls_notes = _length_scale_checks(model, response_name, list(factor_names), list(factor_spans))
     notes += ls_notes
+    terms = []
+    if hasattr(model, "term_table"):
+        names = list(factor_names) if len(factor_names) == model.X_train_.shape[1] else None
+        terms = model.term_table(names).to_dict("records")
     z_bar = float(np.mean(model.z_train_))
     noise_sd = float(model.noise_std_ * tr.inverse_slope(z_bar))
     return ModelDiagnostics(
         response=response_name, model=model.kind, n=n, loo_q2=q2, loo_rmse=rmse, coverage95=coverage,
         length_scales=scales, noise_sd=noise_sd, warnings=notes, measured=y.tolist(),
-        loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist())
+        loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist(),
+        choice={} if choice is None else choice.to_dict(), terms=terms)
 
 
 def diagnose_all(surrogates, factor_names=(), factor_spans=()):

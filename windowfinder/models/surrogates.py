@@ -6,9 +6,8 @@ import numpy as np
 
 from windowfinder.errors import InputError
 from windowfinder.models.base import _check_xy
+from windowfinder.models.choice import MODELS, fit_response
 from windowfinder.models.failure import FailureModel
-from windowfinder.models.gp import GPModel
-from windowfinder.models.quadratic import QuadraticModel
 from windowfinder.models.transform import Transform
 
 
@@ -17,13 +16,16 @@ class Surrogates:
 
     Parameters
     ----------
-    models : dict[str, GPModel | QuadraticModel]
+    models : dict[str, GPModel | PolynomialModel]
     failure : FailureModel or None
+    choices : dict[str, ModelChoice] or None
+        How each response's model was chosen (:mod:`windowfinder.models.choice`).
     """
 
-    def __init__(self, models, failure=None):
+    def __init__(self, models, failure=None, choices=None):
         self.models = dict(models)
         self.failure = failure
+        self.choices = dict(choices or {})
 
     @property
     def names(self):
@@ -54,17 +56,21 @@ class Surrogates:
         works : bool ndarray (n,) or None
             False for failed runs; they are left out of the response models and, when any run failed,
             feed a :class:`FailureModel`.
-        kind : {"gp", "quadratic"}
+        kind : {"gp", "quadratic", "linear", "auto"} or dict[str, str]
+            One setting for every response, or one per response (missing ones: ``"gp"``); ``"auto"``
+            picks by leave-one-out (:func:`windowfinder.models.choice.fit_response`).
         """
-        if kind not in ("gp", "quadratic"):
-            raise InputError(f"model kind '{kind}' is unknown; use gp or quadratic")
+        kinds = {name: (kind.get(name, "gp") if isinstance(kind, dict) else kind) for name in Y}
+        for k in kinds.values():
+            if k not in MODELS:
+                raise InputError(f"model kind '{k}' is unknown; use one of {', '.join(MODELS)}")
         X = _check_xy(X)
         n = X.shape[0]
         ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
         if ok.shape[0] != n:
             raise InputError(f"{n} runs of factor settings but {ok.shape[0]} run outcomes (works)")
         transforms = transforms or {}
-        models = {}
+        models, choices = {}, {}
         for name, y in Y.items():
             y = np.asarray(y, dtype=float).ravel()
             if y.shape[0] != n:
@@ -73,14 +79,11 @@ class Surrogates:
             t = transforms.get(name, "none")
             t = t if isinstance(t, (str, Transform)) else Transform(*t)
             try:
-                if kind == "gp":
-                    m = GPModel(transform=t, n_restarts=n_restarts, random_state=seed)
-                else:
-                    m = QuadraticModel(transform=t)
-                models[name] = m.fit(X[rows], y[rows])
+                models[name], choices[name] = fit_response(X[rows], y[rows], kinds[name], t,
+                                                           n_restarts=n_restarts, seed=seed)
             except InputError as err:
                 raise InputError(f"response {name}: {err}") from None
         failure = None
         if works is not None and not ok.all():
             failure = FailureModel(random_state=seed).fit(X, ok)
-        return cls(models, failure)
+        return cls(models, failure, choices)

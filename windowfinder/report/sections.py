@@ -139,6 +139,14 @@ def models(c: Content) -> str:
         text, bad = verdict(d)
         out.append(f"<h3>{esc(r.name)}{' (safety)' if r.is_safety else ''}</h3>")
         out.append(html_table(pd.DataFrame([row])))
+        if d.choice and len(d.choice.get("scores", {})) > 1:
+            out.append(html_table(tables.choice_frame(d), "Model choice: the candidate with the highest "
+                                  "leave-one-out log density is used (the Gaussian process on ties)."))
+        if d.terms:
+            out.append(html_table(tables.term_frame(d), f"Terms of the {d.model} polynomial, least "
+                                  "squares, in coded units (each factor's low at -1, high at +1) on the "
+                                  "model's scale; p-values from Student t with "
+                                  f"{d.n - len(d.terms)} degrees of freedom."))
         fig = image(figure_png(loo_figure(d, response=r)),
                     f"Measured {r.name} against its leave-one-out prediction with 95 % bars for {d.n} runs.",
                     "Dashed: prediction equals measurement. Squares: runs outside their 95 % bar.")

@@ -1,5 +1,6 @@
 """Tables for the report, as pandas DataFrames in natural units: the window, the balanced pick, the
-status of every limit, replicate runs and the run-to-run scatter they show."""
+status of every limit, replicate runs and the run-to-run scatter they show, and the model choice and
+polynomial terms of each response (coded units)."""
 
 from __future__ import annotations
 
@@ -110,3 +111,19 @@ def replicates(frame: pd.DataFrame, spec, diagnostics=()) -> tuple[pd.DataFrame,
                             "degrees of freedom": dof[r.name],
                             "model noise sd": noise.get(r.name, np.nan)} for r in spec.responses])
     return groups, pooled
+
+
+def choice_frame(diag) -> pd.DataFrame:
+    """Each candidate model's leave-one-out log density and which one the response got."""
+    choice = diag.choice or {}
+    chosen = choice.get("chosen")
+    return pd.DataFrame([{"candidate": k, "LOO log density (latent scale)": v,
+                          "used": "yes" if k == chosen else ""}
+                         for k, v in choice.get("scores", {}).items()],
+                        columns=["candidate", "LOO log density (latent scale)", "used"])
+
+
+def term_frame(diag) -> pd.DataFrame:
+    """A polynomial model's terms: coefficient, standard error, t and p-value (coded units)."""
+    frame = pd.DataFrame(diag.terms, columns=["term", "coefficient", "std_error", "t", "p_value"])
+    return frame.rename(columns={"std_error": "standard error", "p_value": "p-value"})

@@ -1,0 +1,163 @@
+"""The model each response deserves: Gaussian process or polynomial, chosen by leave-one-out.
+
+``model = "auto"`` (a response's default in study.toml) fits the candidates below and keeps the one
+whose leave-one-out predictive log density, on the model's latent scale, is highest; the Gaussian
+process is kept unless a polynomial strictly beats it:
+
+- ``gp``: the Gaussian-process model; Gaussian LOO predictive at fixed hyperparameters (Rasmussen &
+  Williams 2006, §5.4.2, eq. 5.10);
+- ``quadratic``: the full second-order polynomial;
+- ``reduced``: that polynomial after hierarchical backward elimination by AICc
+  (:func:`~windowfinder.models.polynomial.backward_eliminate`); kept as a candidate only when it drops a
+  term.
+
+A polynomial's LOO predictive is a Student t with ``n - p - 1`` degrees of freedom around the PRESS
+prediction (Cook & Weisberg 1982, §2.2). Both LOO scores hold the fitted structure fixed (the GP's
+hyperparameters, the polynomial's selected terms), so both are somewhat optimistic; the comparison is
+like with like. A polynomial that cannot be fitted (too few runs, too few levels) or leaves a run
+unpredictable (leverage 1), or with fewer than 2 residual degrees of freedom, is not a candidate.
+When the second-order model cannot be fitted, the first-order one takes its place.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from scipy import stats
+
+from windowfinder.errors import InputError
+from windowfinder.inputs.spec import MODELS
+from windowfinder.models.gp import GPModel
+from windowfinder.models.polynomial import PolynomialModel, backward_eliminate
+
+
+def loo_log_density(model) -> float:
+    """Sum over the runs of the leave-one-out predictive log density, latent scale.
+
+    Normal for a model without ``loo_dof`` (the GP); Student t with ``model.loo_dof`` degrees of freedom
+    for least squares. NaN when some run cannot be predicted from the others.
+    """
+    mu, sd = model.loo()
+    z = model.z_train_
+    if not (np.all(np.isfinite(mu)) and np.all(np.isfinite(sd)) and np.all(sd > 0)):
+        return float("nan")
+    dof = getattr(model, "loo_dof", None)
+    dist = stats.norm if dof is None else stats.t(dof)
+    return float(np.sum(dist.logpdf((z - mu) / sd) - np.log(sd)))
+
+
+@dataclass
+class ModelChoice:
+    """Which model a response got and why.
+
+    Attributes
+    ----------
+    requested : {"auto", "gp", "quadratic", "linear"}
+    chosen : str
+        ``gp``, ``quadratic``, ``linear`` or ``reduced``.
+    scores : dict[str, float or None]
+        Candidate -> LOO log density (latent scale, summed over runs); None where it could not be
+        computed.
+    notes : list[str]
+        Why a candidate was left out.
+    terms : list[str]
+        Terms of the chosen polynomial (coded units); empty for the Gaussian process.
+    """
+
+    requested: str
+    chosen: str
+    scores: dict = field(default_factory=dict)
+    notes: list = field(default_factory=list)
+    terms: list = field(default_factory=list)
+
+    def to_dict(self) -> dict:
+        return {"requested": self.requested, "chosen": self.chosen, "terms": list(self.terms),
+                "scores": {k: (None if v is None or not np.isfinite(v) else float(v))
+                           for k, v in self.scores.items()},
+                "notes": list(self.notes)}
+
+    @classmethod
+    def from_dict(cls, data: dict) -> "ModelChoice":
+        """Inverse of :meth:`to_dict` (None scores become NaN)."""
+        scores = {k: float("nan") if v is None else v for k, v in data.get("scores", {}).items()}
+        return cls(data["requested"], data["chosen"], scores, list(data.get("notes", [])),
+                   list(data.get("terms", [])))
+
+    def text(self) -> str:
+        """One line: each candidate's score and the choice."""
+        parts = [f"{k} {'n/a' if v is None or not np.isfinite(v) else f'{v:.2f}'}"
+                 for k, v in self.scores.items()]
+        how = "chosen" if self.requested == "auto" else "as set in study.toml"
+        terms = f"; terms {' '.join(self.terms)}" if self.terms else ""
+        return f"LOO log density {', '.join(parts)} -> {self.chosen} ({how}{terms})"
+
+
+def _polynomial(X, y, transform, terms=None, degree=2):
+    return PolynomialModel(terms=terms, transform=transform, degree=degree).fit(X, y)
+
+
+def _candidates_polynomial(X, y, transform, notes):
+    """Full second-order (or, failing that, first-order) model and its AICc reduction."""
+    out = {}
+    full = None
+    for degree, name in ((2, "quadratic"), (1, "linear")):
+        try:
+            full = _polynomial(X, y, transform, degree=degree)
+            out[name] = full
+            break
+        except InputError as err:
+            notes.append(f"{name}: {err}")
+    if full is None:
+        return out
+    if full.df_resid_ < 2:
+        notes.append(f"{full.kind}: {full.df_resid_} residual degree of freedom; leave-one-out needs 2")
+        return {}
+    kept = backward_eliminate(2.0 * full.X_train_ - 1.0, full.z_train_, full.terms_)
+    if kept != full.terms_:
+        out["reduced"] = _polynomial(X, y, transform, terms=kept)
+    return out
+
+
+def _choice(requested, key, m, scores, notes=()):
+    terms = m.feature_names() if isinstance(m, PolynomialModel) else []
+    return m, ModelChoice(requested, key, scores, list(notes), terms)
+
+
+def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0):
+    """Fit the model a response asks for (or, with ``"auto"``, the best by leave-one-out).
+
+    Parameters
+    ----------
+    X : ndarray (n, d), coded
+    y : ndarray (n,), natural units, all finite
+    model : {"auto", "gp", "quadratic", "linear"}
+    transform : str or Transform
+    n_restarts, seed : int
+        For the Gaussian process.
+
+    Returns
+    -------
+    fitted model, ModelChoice
+    """
+    if model not in MODELS:
+        raise InputError(f"model '{model}' is unknown; use one of {', '.join(MODELS)}")
+    notes = []
+    if model == "gp":
+        m = GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)
+        return _choice(model, "gp", m, {"gp": loo_log_density(m)})
+    if model in ("quadratic", "linear"):
+        m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1)
+        return _choice(model, model, m, {model: loo_log_density(m)})
+    cands = {"gp": GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)}
+    cands.update(_candidates_polynomial(X, y, transform, notes))
+    scores = {k: loo_log_density(m) for k, m in cands.items()}
+    best = "gp"
+    for k, s in scores.items():
+        if s > scores[best] or (np.isfinite(s) and not np.isfinite(scores[best])):
+            best = k
+    for k, s in scores.items():
+        if not np.isfinite(s):
+            notes.append(f"{k}: some run cannot be predicted from the others; not a candidate")
+    return _choice("auto", best, cands[best], scores, notes)
+
