@@ -306,7 +306,8 @@ def test_probability_map_values_hatching_and_confidence_line(built):
     if grid.fmap.untrusted.any():
         assert sets["untrusted"].hatches == ["xx"]
     # the mapped probability is the product of normal probabilities of each limit (new-run predictive
-    # sd) times P(works): P(lo <= Y <= hi) = Phi((hi - mu)/sd) - Phi((lo - mu)/sd), scipy.stats.norm
+    # sd) times P(works): P(lo <= Y <= hi) = Phi((hi - mu)/sd) - Phi((lo - mu)/sd), scipy.stats.norm;
+    # Student t with n - p dof for a least-squares polynomial (Montgomery 2013, §10.6), scipy.stats.t
     U = grid.U[::37]
     p = fit.surrogates.failure.predict_proba(U)
     for r in spec.limited:
@@ -314,7 +315,8 @@ def test_probability_map_values_hatching_and_confidence_line(built):
         mu, sd = m.predict(U, return_std=True, noise=True)
         lo = -np.inf if r.min is None else m.transform_.forward(np.array([r.min]))[0]
         hi = np.inf if r.max is None else m.transform_.forward(np.array([r.max]))[0]
-        p = p * (norm.cdf((hi - mu) / sd) - norm.cdf((lo - mu) / sd))
+        dist = norm if getattr(m, "dof_", None) is None else t_dist(m.dof_)
+        p = p * (dist.cdf((hi - mu) / sd) - dist.cdf((lo - mu) / sd))
     np.testing.assert_allclose(grid.fmap.p_joint[::37], p, rtol=1e-6, atol=1e-9)
 
 
@@ -425,3 +427,20 @@ def test_renders_in_a_real_browser(built, tmp_path):
     assert float(np.var(img)) > 0
     assert len(np.unique(img.reshape(-1, img.shape[-1])[::7], axis=0)) > 10
     shutil.rmtree(tmp_path / "profile", ignore_errors=True)
+
+
+def test_models_section_shows_choice_and_terms(built):
+    # rendering contract (no external source): the candidates' LOO scores and the term table of each
+    # polynomial model appear under the response, as in fit.json
+    for d in built.fit.diagnostics:
+        rows = [t["rows"] for t in built.page.tables if t["section"] == "models" and d.response in t["h3"]]
+        choice = next(r for r in rows if r[0][0] == "candidate")
+        shown = {r[0]: float(r[1]) for r in choice[1:]}
+        assert shown == pytest.approx(d.choice["scores"], rel=1e-3)
+        assert [r[0] for r in choice[1:] if r[2] == "yes"] == [d.choice["chosen"]]
+        terms = [r for r in rows if r[0][0] == "term"]
+        assert bool(terms) == bool(d.terms)
+        if d.terms:
+            assert [r[0] for r in terms[0][1:]] == [t["term"] for t in d.terms]
+            assert [float(r[1]) for r in terms[0][1:]] == pytest.approx(
+                [t["coefficient"] for t in d.terms], rel=1e-3, abs=1e-9)
