@@ -8,6 +8,8 @@ REFERENCES = [
     "Rasmussen, C. E. and Williams, C. K. I. (2006). Gaussian Processes for Machine Learning. MIT Press "
     "(ch. 2 and 4: regression and the Matérn class; ch. 5 and §5.4.2: marginal likelihood and "
     "leave-one-out predictions).",
+    "Hurvich, C. M. and Tsai, C.-L. (1989). Regression and time series model selection in small samples. "
+    "Biometrika 76(2), 297-307.",
     "Deb, K., Pratap, A., Agarwal, S. and Meyarivan, T. (2002). A fast and elitist multiobjective genetic "
     "algorithm: NSGA-II. IEEE Transactions on Evolutionary Computation 6(2), 182-197.",
     "Deb, K. and Jain, H. (2014). An evolutionary many-objective optimization algorithm using "
@@ -29,7 +31,7 @@ REFERENCES = [
     "Jansen, M. J. W. (1999). Analysis of variance designs for model output. Computer Physics "
     "Communications 117, 35-43.",
     "Montgomery, D. C. (2013). Design and Analysis of Experiments, 8th ed. Wiley (§2.4.1 pooled variance; "
-    "§10.7 PRESS).",
+    "§10.4-10.6 coefficient tests, mean and prediction intervals; §10.7 PRESS).",
     "Nuñez, J. R., Anderton, C. R. and Renslow, R. S. (2018). Optimizing colormaps with consideration for "
     "color vision deficiency (cividis). PLoS ONE 13(7), e0199239.",
 ]
@@ -57,6 +59,12 @@ def method_notes(spec, window=None) -> str:
         "white-noise term; factors coded to [0, 1], responses standardised (optionally on a log or "
         "logit scale), hyperparameters by maximum marginal likelihood with several seeded restarts. "
         "Failed runs feed a Gaussian-process classifier of P(process works).",
+        "Model choice: with model = \"auto\" (the default) each response's Gaussian process is compared "
+        "with the full quadratic polynomial and a reduced one (hierarchical backward elimination by AICc, "
+        "Hurvich & Tsai 1989) by the leave-one-out predictive log density; a polynomial is used only where "
+        "it scores higher. Polynomials are fitted by least squares; their intervals and probabilities use "
+        "Student t with n - p degrees of freedom, their term tables give coefficient, standard error, t "
+        "and p-value in coded units (Montgomery 2013, §10.4-10.6).",
         "Leave-one-out checks use the closed form at fixed hyperparameters (Rasmussen & Williams 2006, "
         "§5.4.2); they are slightly optimistic for very small data sets. Warning thresholds (Q² below "
         "0.5, coverage below 80 % with 10 or more runs) are common practice, not from a source.",
