@@ -154,6 +154,24 @@ def test_backward_elimination_recovers_true_terms():
     assert exact / trials >= expected - 3 * math.sqrt(expected * (1 - expected) / trials), (exact, expected)
 
 
+def test_elimination_stops_at_a_local_aicc_minimum_by_lstsq(ccd):
+    # no hierarchical single removal from the kept set lowers AICc, with RSS from numpy.linalg.lstsq
+    U, x, d = ccd
+    for name in ("yield", "viscosity", "mw"):
+        y = d[name].to_numpy()
+        kept = backward_eliminate(x, y, full_terms(2, 2))
+
+        def aicc(ts):
+            F = _matrix(x, ts)
+            r = y - F @ np.linalg.lstsq(F, y, rcond=None)[0]
+            return information_criterion(float(r @ r), len(y), len(ts))
+
+        needed = {(0,) for t in kept if 0 in t and len(t) == 2} | {(1,) for t in kept if 1 in t and len(t) == 2}
+        for t in kept:
+            if t and t not in needed:
+                assert aicc(kept) <= aicc([u for u in kept if u != t]), (name, t)
+
+
 def test_elimination_keeps_hierarchy():
     # y depends on x1^2 only; x1 must stay while x1^2 does (parents kept)
     g = np.array(np.meshgrid([-1.0, 0.0, 1.0], [-1.0, 0.0, 1.0], indexing="ij")).reshape(2, -1).T

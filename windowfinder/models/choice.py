@@ -89,7 +89,7 @@ class ModelChoice:
         parts = [f"{k} {'n/a' if v is None or not np.isfinite(v) else f'{v:.2f}'}"
                  for k, v in self.scores.items()]
         how = "chosen" if self.requested == "auto" else "as set in study.toml"
-        terms = f"; terms {' '.join(self.terms)}" if self.terms else ""
+        terms = f", {len(self.terms)} terms" if self.terms else ""
         return f"LOO log density {', '.join(parts)} -> {self.chosen} ({how}{terms})"
 
 
