@@ -122,7 +122,7 @@ def test_textbook_ccd_check_fit_window_testplan(montgomery, capsys):
     assert q2["yield"] >= 0.6
 
     # With 13 runs the models leave much doubt about viscosity between the runs, so no window reaches
-    # P >= 0.5 for a new run (best 0.49 with the default model choice, 0.26 with GPs only); the tool
+    # P >= 0.5 for a new run (best 0.49 with the default model choice, 0.25 with GPs only); the tool
     # must say so (exit 0, found false) and name the best it found.
     code, out, _ = run(["window", montgomery, "--confidence", "0.5"], capsys)
     assert code == 0
