@@ -103,19 +103,28 @@ def _candidates_polynomial(X, y, transform, notes):
     full = None
     for degree, name in ((2, "quadratic"), (1, "linear")):
         try:
-            full = _polynomial(X, y, transform, degree=degree)
-            out[name] = full
-            break
+            m = _polynomial(X, y, transform, degree=degree)
         except InputError as err:
             notes.append(f"{name}: {err}")
+            continue
+        if m.df_resid_ >= 2:
+            full = out[name] = m
+            break
+        notes.append(f"{name}: {m.df_resid_} residual degree of freedom; leave-one-out needs 2")
     if full is None:
         return out
-    if full.df_resid_ < 2:
-        notes.append(f"{full.kind}: {full.df_resid_} residual degree of freedom; leave-one-out needs 2")
-        return {}
     kept = backward_eliminate(2.0 * full.X_train_ - 1.0, full.z_train_, full.terms_)
     if kept != full.terms_:
         out["reduced"] = _polynomial(X, y, transform, terms=kept)
+    return out
+
+
+def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None):
+    """The fitted candidates of ``model = "auto"``: ``{"gp": ..., "quadratic" | "linear": ...,
+    "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``)."""
+    notes = [] if notes is None else notes
+    out = {"gp": GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)}
+    out.update(_candidates_polynomial(X, y, transform, notes))
     return out
 
 
@@ -149,8 +158,7 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0):
     if model in ("quadratic", "linear"):
         m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1)
         return _choice(model, model, m, {model: loo_log_density(m)})
-    cands = {"gp": GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)}
-    cands.update(_candidates_polynomial(X, y, transform, notes))
+    cands = candidates(X, y, transform, n_restarts, seed, notes)
     scores = {k: loo_log_density(m) for k, m in cands.items()}
     best = "gp"
     for k, s in scores.items():

@@ -170,7 +170,7 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     factor_spans : sequence of float
         ``high - low`` per factor, to express length scales in factor units.
     choice : ModelChoice or None
-        Recorded as ``choice`` (its notes join the warnings).
+        Recorded as ``choice``.
 
     Returns
     -------
