@@ -67,7 +67,8 @@ def test_append_keeps_old_bytes_verbatim(study_dir, spec):
     append_runs(p, spec, new)
     after = p.read_bytes()
     assert after.startswith(before)
-    assert after[len(before):].decode() == "R006,55,75,,,planned,'=cmd|' /C calc'!A0\n"
+    # runs.csv is the user's own data: the note is kept verbatim (neutralised only in exported tables)
+    assert after[len(before):].decode() == "R006,55,75,,,planned,=cmd|' /C calc'!A0\n"
     t = read_runs(p, spec)
     assert t.frame["status"].iloc[-1] == "planned" and len(t) == 6
 

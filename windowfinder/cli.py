@@ -21,8 +21,9 @@ class _Parser(argparse.ArgumentParser):
 
 
 def _out(study, name: str) -> Path:
-    study.out.mkdir(parents=True, exist_ok=True)
-    return study.out / name
+    from windowfinder.inputs.storage import ensure_folder
+
+    return ensure_folder(study.out) / name
 
 
 def _load(args):
@@ -68,11 +69,9 @@ def cmd_check(args):
 def cmd_design(args):
     study = _load(args)
     frame = study.design(args.method, runs=args.runs, centre=args.centre, seed=args.seed)
-    path = _out(study, "design.csv")
-    from windowfinder.inputs.runs import format_rows, write_atomic
+    from windowfinder.export.files import write_csv
 
-    header = list(frame.columns)
-    write_atomic(path, ",".join(header) + "\n" + format_rows(frame, header))
+    path = write_csv(_out(study, "design.csv"), frame)
     study.add_runs(frame)
     print(f"{len(frame)} planned runs ({args.method}) appended to {study.runs_path}; copy in {path}")
     print(frame[["run", *study.spec.factor_names]].to_string(index=False))
@@ -89,7 +88,7 @@ def cmd_fit(args):
     res = study.fit(n_restarts=args.restarts)
     _warn(res.warnings)
     path = _out(study, "fit.json")
-    from windowfinder.inputs.runs import write_atomic
+    from windowfinder.inputs.storage import write_atomic
 
     write_atomic(path, json.dumps(res.to_dict(), indent=2, allow_nan=False) + "\n")
     print(format_diagnostics(res, study.spec))

@@ -8,7 +8,7 @@ below it in the data flow (designs, surrogate, diagnostics, feasibility, window,
 
 from __future__ import annotations
 
-import shutil
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -17,8 +17,10 @@ import pandas as pd
 
 from windowfinder.inputs import designs
 from windowfinder.errors import InputError
-from windowfinder.inputs.runs import RunTable, append_runs, next_ids, read_runs, write_atomic, write_runs
-from windowfinder.inputs.spec import StudySpec
+from windowfinder.inputs.names import toml_string
+from windowfinder.inputs.runs import RunTable, append_runs, next_ids, read_runs, write_runs
+from windowfinder.inputs.spec import MAX_SEED, StudySpec
+from windowfinder.inputs.storage import ensure_folder, readable_file, write_atomic
 
 STUDY_FILE = "study.toml"
 RUNS_FILE = "runs.csv"
@@ -26,7 +28,7 @@ RUNS_FILE = "runs.csv"
 TEMPLATE = """\
 # windowfinder study file. Units live here, not in the run table's headers.
 [study]
-name = "{name}"
+name = {name}
 confidence = 0.95     # confidence for windows and feasibility
 seed = 1              # same inputs + seed -> same outputs
 
@@ -121,6 +123,8 @@ class Study:
         which cannot support a full quadratic model without one, and none to the others.
         """
         seed = self.spec.seed if seed is None else seed
+        if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= MAX_SEED:
+            raise InputError(f"--seed {seed!r}: must be a whole number from 0 to {MAX_SEED}")
         if centre is None:
             centre = 1 if method in ("box-behnken", "ccd-inscribed", "ccd-circumscribed") else 0
         U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
@@ -293,7 +297,7 @@ def create_study(directory, example: str | None = None, name: str | None = None)
     """
     directory = Path(directory)
     target = directory / STUDY_FILE
-    if target.exists():
+    if os.path.lexists(target) or readable_file(target, "study file"):
         raise InputError(f"{target}: already exists; choose a new folder (nothing was changed)")
     if example is not None:
         from windowfinder import cases
@@ -302,12 +306,12 @@ def create_study(directory, example: str | None = None, name: str | None = None)
         if example not in names:
             raise InputError(f"--example '{example}' unknown; bundled examples: {', '.join(names)}")
         src = cases.case_dir(example)
-        directory.mkdir(parents=True, exist_ok=True)
-        shutil.copyfile(src / STUDY_FILE, target)
+        ensure_folder(directory, "study folder")
+        write_atomic(target, (src / STUDY_FILE).read_text(encoding="utf-8"))
         for extra in ("README.md", RUNS_FILE):  # the scenario and its example runs (a space-filling start)
-            if (src / extra).exists() and not (directory / extra).exists():
-                shutil.copyfile(src / extra, directory / extra)
+            if (src / extra).exists() and not os.path.lexists(directory / extra):
+                write_atomic(directory / extra, (src / extra).read_text(encoding="utf-8"))
         return target
-    directory.mkdir(parents=True, exist_ok=True)
-    write_atomic(target, TEMPLATE.format(name=(name or directory.name).replace('"', "'")))
+    ensure_folder(directory, "study folder")
+    write_atomic(target, TEMPLATE.format(name=toml_string(name or directory.name)))
     return target

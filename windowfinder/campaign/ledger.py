@@ -17,7 +17,7 @@ import pandas as pd
 
 from windowfinder.campaign.evaluators import RunOutcome, one_line
 from windowfinder.errors import InputError
-from windowfinder.inputs.runs import append_runs, format_rows, next_ids, read_runs, write_atomic, write_runs
+from windowfinder.inputs.runs import append_runs, format_header, format_rows, next_ids, read_runs, write_atomic, write_runs
 from windowfinder.study import Study
 
 UNSAVED = "unsaved-runs.csv"
@@ -110,7 +110,7 @@ class RunLedger:
         rec = {**self.issued.get(outcome.run, {}), **outcome.responses, "run": outcome.run,
                "status": outcome.status, "note": outcome.note}
         header = ["run", *self.study.spec.factor_names, *self.study.spec.response_names, "status", "note"]
-        old = path.read_text(encoding="utf-8") if path.exists() else ",".join(header) + "\n"
+        old = path.read_text(encoding="utf-8") if path.exists() else format_header(header)
         write_atomic(path, old + format_rows(pd.DataFrame([rec]), header))
         return path
 

@@ -1,6 +1,7 @@
 """Writers: window spec (json, md), trade-off table and test plan (csv). They never fit models.
 
-Every file is written atomically; CSV cells are neutralised against spreadsheet formula injection.
+Every file is written atomically; CSV cells (header included) are neutralised against spreadsheet
+formula injection; names and texts in window.md are escaped for Markdown.
 """
 
 from __future__ import annotations
@@ -12,7 +13,8 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from windowfinder.inputs.runs import format_rows, write_atomic
+from windowfinder.inputs.runs import format_table
+from windowfinder.inputs.storage import ensure_folder, write_atomic
 
 
 def _clean(obj):
@@ -38,9 +40,23 @@ def write_json(path, data) -> Path:
 
 
 def write_csv(path, frame: pd.DataFrame) -> Path:
-    header = [str(c) for c in frame.columns]
-    write_atomic(path, ",".join(header) + "\n" + format_rows(frame, header))
+    """An exported table (design, next runs, trade-off, test plan): header and text cells neutralised
+    against spreadsheet formulas (:func:`~windowfinder.inputs.runs.safe_cell`)."""
+    write_atomic(path, format_table(frame, guard=True))
     return Path(path)
+
+
+_MD_ENTITIES = {"&": "&amp;", "<": "&lt;", ">": "&gt;"}
+_MD_PUNCT = set("\\`*_[]|~#$!")
+
+
+def md(text) -> str:
+    """``text`` as literal Markdown on one line: ``& < >`` as HTML entities (no raw HTML reaches the page)
+    and the Markdown punctuation ``\\ ` * _ [ ] | ~ # $ !`` backslash-escaped (CommonMark spec 0.30,
+    §2.4 "Backslash escapes": any ASCII punctuation may be escaped), so a name cannot open emphasis,
+    a link, a table cell or an HTML tag."""
+    s = " ".join(str(text).split())
+    return "".join(_MD_ENTITIES.get(c) or ("\\" + c if c in _MD_PUNCT else c) for c in s)
 
 
 def _g(v, digits: int = 4) -> str:
@@ -62,15 +78,15 @@ def window_table(win) -> str:
 
 def window_markdown(win, study_name: str) -> str:
     """window.md: the same content as window.json, for people."""
-    out = [f"# Process window — {study_name}", ""]
+    out = [f"# Process window — {md(study_name)}", ""]
     if win.safety:
-        out += ["> **Caution.** " + win.cautions[0], ""]
+        out += ["> **Caution.** " + md(win.cautions[0]), ""]
     if not win.found and not getattr(win, "supported", True):
-        out += [f"**No window: the runs cannot support one.** {win.message}", ""]
+        out += [f"**No window: the runs cannot support one.** {md(win.message)}", ""]
     elif not win.found:
-        out += [f"**No window reaches the confidence {win.confidence:g}.** {win.message}", ""]
+        out += [f"**No window reaches the confidence {win.confidence:g}.** {md(win.message)}", ""]
         if win.best_point:
-            out += ["Best point found: " + ", ".join(f"{k} = {_g(v)}" for k, v in win.best_point.items())
+            out += ["Best point found: " + ", ".join(f"{md(k)} = {_g(v)}" for k, v in win.best_point.items())
                     + f" (P = {_g(win.best_probability, 3)})", ""]
     else:
         basis = "the process mean" if win.mean_only else "each new run (model uncertainty + run-to-run noise)"
@@ -78,16 +94,16 @@ def window_markdown(win, study_name: str) -> str:
                 f"probability at least **{win.min_probability:.3f}**, for {basis}.", "",
                 "| factor | low | high | unit | tolerance | guard band |", "|---|---|---|---|---|---|"]
         for f in win.factors:
-            out.append(f"| {f['name']} | {_g(f['low'])} | {_g(f['high'])} | {f['unit']} | "
+            out.append(f"| {md(f['name'])} | {_g(f['low'])} | {_g(f['high'])} | {md(f['unit'])} | "
                        f"± {_g(f['tolerance'])} | {_g(f['guard_low'])} – {_g(f['guard_high'])} |")
         out += ["", "Lowest probability at: " + ", ".join(
-            f"{k} = {_g(v)}" for k, v in win.worst_point.items()), "",
+            f"{md(k)} = {_g(v)}" for k, v in win.worst_point.items()), "",
             "## Predicted responses inside the window (guard band included)", "",
             "| response | limit | predicted | 95 % prediction interval | unit |", "|---|---|---|---|---|"]
         for p in win.predicted:
-            out.append(f"| {p['response']}{' (safety)' if p['kind'] == 'safety' else ''} | {p['limit']} | "
+            out.append(f"| {md(p['response'])}{' (safety)' if p['kind'] == 'safety' else ''} | {md(p['limit'])} | "
                        f"{_g(p['low'])} – {_g(p['high'])} | {_g(p['pi95_low'])} – {_g(p['pi95_high'])} | "
-                       f"{p['unit']} |")
+                       f"{md(p['unit'])} |")
         if win.untrusted_share is not None:
             out += ["", f"Share of the window flagged untrusted (far from runs or too uncertain): "
                         f"{win.untrusted_share:.0%}."]
@@ -95,15 +111,14 @@ def window_markdown(win, study_name: str) -> str:
         out += ["", "## Models", "", "| response | model | runs | LOO Q² | LOO RMSE | 95 % coverage |",
                 "|---|---|---|---|---|---|"]
         for d in win.diagnostics:
-            out.append(f"| {d['response']} | {d['model']} | {d['n']} | {_g(d['loo_q2'], 3)} | "
+            out.append(f"| {md(d['response'])} | {d['model']} | {d['n']} | {_g(d['loo_q2'], 3)} | "
                        f"{_g(d['loo_rmse'], 3)} | {_g(100 * d['coverage95'], 3)} % |")
-    out += ["", "## Cautions", ""] + [f"- {c}" for c in win.cautions]
+    out += ["", "## Cautions", ""] + [f"- {md(c)}" for c in win.cautions]
     return "\n".join(out) + "\n"
 
 
 def write_window(out_dir, win, study_name: str) -> list[Path]:
-    out_dir = Path(out_dir)
-    out_dir.mkdir(parents=True, exist_ok=True)
+    out_dir = ensure_folder(out_dir)
     data = win.to_dict()
     data = {"found": data.pop("found"), "confidence": data.pop("confidence"),
             "min_probability": data.pop("min_probability"), "factors": data.pop("factors"),

@@ -14,9 +14,7 @@ import csv
 import difflib
 import io
 import math
-import os
 import re
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -25,6 +23,7 @@ import pandas as pd
 
 from windowfinder.errors import InputError
 from windowfinder.inputs.spec import MAX_MAGNITUDE, StudySpec
+from windowfinder.inputs.storage import read_bytes, readable_file, write_atomic
 
 STATUSES = ("done", "planned", "failed")
 # A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a
@@ -33,18 +32,27 @@ FAR_OUTSIDE = 10.0
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
-def safe_cell(v) -> str:
-    """Text for a CSV/XLSX cell, neutralised against spreadsheet formula injection.
-
-    A text cell starting with = + - @ (or a tab / carriage return) is prefixed with an apostrophe, as
-    recommended by the OWASP "CSV Injection" guidance; numbers are written as numbers.
-    """
+def plain_cell(v) -> str:
+    """Text of a cell as it is: blank for None/NaN, numbers as numbers, text verbatim."""
     if v is None or (isinstance(v, float) and math.isnan(v)):
         return ""
     if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool):
         f = float(v)
         return str(int(f)) if f.is_integer() and abs(f) < 1e15 else repr(f)
-    s = str(v)
+    return str(v)
+
+
+def safe_cell(v) -> str:
+    """Text for a cell of an exported table, neutralised against spreadsheet formula injection.
+
+    A text cell starting with = + - @ (or a tab / carriage return) is prefixed with an apostrophe, as
+    recommended by the OWASP "CSV Injection" guidance; numbers are written as numbers. Used for the
+    tables written for spreadsheets (design, next runs, trade-off, test plan), never for runs.csv, the
+    user's own data, which is written verbatim.
+    """
+    s = plain_cell(v)
+    if isinstance(v, (int, float, np.integer, np.floating)) and not isinstance(v, bool):
+        return s
     return "'" + s if s.startswith(_FORMULA_START) else s
 
 
@@ -104,7 +112,7 @@ def empty_table(spec: StudySpec) -> pd.DataFrame:
 
 
 def _read_text(path: Path) -> str:
-    data = path.read_bytes()
+    data = read_bytes(path, "table")
     if data.startswith((b"\xff\xfe", b"\xfe\xff")):
         raise InputError(f"{path.name}: saved as UTF-16 text; save the table as CSV UTF-8")
     if b"\x00" in data:
@@ -121,6 +129,7 @@ def _read_text(path: Path) -> str:
 def _raw_rows(path: Path) -> tuple[list[str], list[list[str]], list[int]]:
     """Header, rows of text cells, and each row's line number in the file."""
     if path.suffix.lower() in (".xlsx", ".xlsm"):
+        read_bytes(path, "workbook")  # a folder, FIFO or dangling link is refused first
         try:
             import openpyxl  # noqa: F401
         except ImportError:
@@ -180,7 +189,7 @@ def _number(cell: str, where: str, column: str, allow_blank: bool) -> float:
 def read_runs(path, spec: StudySpec) -> RunTable:
     """Read and validate a run table (CSV, or XLSX when openpyxl is installed)."""
     path = Path(path)
-    if not path.exists():
+    if not readable_file(path, "run table"):  # absent: an empty table (a dangling link is refused)
         return RunTable(empty_table(spec), spec, path)
     header, rows, line_nos = _raw_rows(path)
     name = path.name
@@ -298,38 +307,31 @@ def _spread_warnings(table: RunTable, name: str) -> list[str]:
     return out
 
 
-def format_rows(frame: pd.DataFrame, header: list[str]) -> str:
-    """CSV text (no header) of ``frame`` in ``header`` order, cells neutralised."""
+def format_rows(frame: pd.DataFrame, header: list[str], guard: bool = False) -> str:
+    """CSV text (no header) of ``frame`` in ``header`` order, quoted by the csv module; with ``guard``
+    text cells are neutralised against formula injection (:func:`safe_cell`), else written verbatim."""
+    cell = safe_cell if guard else plain_cell
     buf = io.StringIO()
     w = csv.writer(buf, lineterminator="\n")
     for rec in frame.to_dict("records"):
-        w.writerow([safe_cell(rec.get(c)) for c in header])
+        w.writerow([cell(rec.get(c)) for c in header])
     return buf.getvalue()
 
 
-def write_atomic(path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename."""
-    path = Path(path)
-    path.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", suffix=".tmp", dir=path.parent)
-    try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, path)
-    except BaseException:
-        if os.path.exists(tmp):
-            os.unlink(tmp)
-        raise
-    try:  # make the rename itself durable
-        dfd = os.open(path.parent, os.O_RDONLY)
-        try:
-            os.fsync(dfd)
-        finally:
-            os.close(dfd)
-    except OSError:
-        pass
+def format_header(header, guard: bool = False) -> str:
+    """The CSV header line of ``header`` (names quoted where needed; neutralised with ``guard``)."""
+    cell = safe_cell if guard else plain_cell
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerow([cell(str(c)) for c in header])
+    return buf.getvalue()
+
+
+def format_table(frame: pd.DataFrame, guard: bool = True) -> str:
+    """A whole CSV table, header included; ``guard`` (default) for tables exported to spreadsheets."""
+    header = [str(c) for c in frame.columns]
+    body = frame.copy()
+    body.columns = header
+    return format_header(header, guard) + format_rows(body, header, guard)
 
 
 def next_ids(existing, k: int, prefix: str = "R") -> list[str]:
@@ -345,7 +347,7 @@ def append_runs(path, spec: StudySpec, new: pd.DataFrame) -> None:
     path = Path(path)
     if path.suffix.lower() != ".csv":
         raise InputError(f"{path.name}: windowfinder only appends to a CSV run table; save it as runs.csv")
-    if path.exists():
+    if readable_file(path, "run table"):
         old = _read_text(path)
         header, _, _ = _raw_rows(path)
         missing = [c for c in new.columns if c not in header and new[c].notna().any()
@@ -365,5 +367,5 @@ def append_runs(path, spec: StudySpec, new: pd.DataFrame) -> None:
 def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
     """Rewrite the whole run table atomically (standard column order)."""
     header = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
-    text = ",".join(header) + "\n" + format_rows(frame, header)
+    text = format_header(header) + format_rows(frame, header)
     write_atomic(path, text)

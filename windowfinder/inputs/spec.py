@@ -17,12 +17,13 @@ from pathlib import Path
 import numpy as np
 
 from windowfinder.errors import InputError
+from windowfinder.inputs.names import RESERVED, name_problem
+from windowfinder.inputs.storage import read_bytes, readable_file
 
 GOALS = ("maximize", "minimize", "target", "none")
 KINDS = ("quality", "safety")
 TRANSFORMS = ("none", "log", "logit")
 MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.models.choice)
-RESERVED = ("run", "status", "note")
 
 STUDY_KEYS = ("name", "confidence", "seed", "description")
 FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
@@ -33,6 +34,9 @@ TOP_KEYS = ("study", "factor", "response")
 # (common practice, no source).
 MAX_MAGNITUDE = 1e100
 MAX_SEED = 2**32 - 1  # numpy RandomState and scikit-learn accept seeds 0 .. 2**32 - 1
+# Finest step accepted, as a share of the factor's range: a million settable levels is beyond any
+# instrument, and a finer grid only costs memory (common practice, no source).
+MIN_STEP_SHARE = 1e-6
 
 
 def _short(v, n: int = 60) -> str:
@@ -213,9 +217,9 @@ class StudySpec:
     @classmethod
     def from_toml(cls, path) -> "StudySpec":
         path = Path(path)
-        if not path.exists():
+        if not readable_file(path, "study file"):
             raise InputError(f"{path}: study file not found; create one with 'windowfinder new DIR'")
-        data = path.read_bytes()
+        data = read_bytes(path, "study file")
         if data.startswith((b"\xff\xfe", b"\xfe\xff")):
             raise InputError(f"{path}: saved as UTF-16 text; save the study file as UTF-8")
         try:
@@ -286,8 +290,9 @@ class _Parser:
         n = self.text(table, "name", where).strip()
         if not n:
             self.fail(where, "'name' is empty")
-        if n.lower() in RESERVED:
-            self.fail(where, f"name '{n}' is reserved for a run-table column; choose another")
+        problem = name_problem(n)
+        if problem:
+            self.fail(where, problem)
         if n in self.names:
             self.fail(where, f"duplicate name '{n}'; factor and response names must be unique")
         self.names.add(n)
@@ -329,6 +334,9 @@ class _Parser:
         step = self.number(t, "step", where)
         if step is not None and not 0 < step <= high - low:
             self.fail(where, f"step = {step:g} must be > 0 and no larger than high - low")
+        if step is not None and step < MIN_STEP_SHARE * (high - low):
+            self.fail(where, f"step = {step:g} is finer than a millionth of the range {high - low:g}; use a "
+                      "coarser step, or drop 'step' for a continuous setting")
         tol = self.number(t, "tolerance", where, default=0.0)
         if not 0 <= tol < (high - low) / 2:
             self.fail(where, f"tolerance = {tol:g} must be >= 0 and below half the range")

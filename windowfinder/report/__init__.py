@@ -14,7 +14,7 @@ from pathlib import Path
 import pandas as pd
 
 from windowfinder.errors import InputError
-from windowfinder.inputs.runs import write_atomic
+from windowfinder.inputs.storage import write_atomic
 from windowfinder.report import sections
 from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
 from windowfinder.report.maps import (SliceGrid, draw_overlays, map_figure, map_pairs, probability_map_figure, slice_centre,
@@ -27,7 +27,7 @@ SECTION_IDS = ("summary", "data", "models", "maps", "tradeoff", "influence", "ne
 
 def _digest(path) -> str:
     path = Path(path) if path is not None else None
-    if path is None or not path.exists():
+    if path is None or not path.is_file():
         return "missing"
     return hashlib.sha256(path.read_bytes()).hexdigest()[:12]
 
@@ -102,7 +102,11 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
         if missing:
             raise InputError(f"suggestions: no column for factor(s) {', '.join(missing)}; give every "
                              "factor's setting in natural units")
-    text = build_html(study, fit, window, tradeoff, suggestions, influence)
+    import matplotlib
+
+    # names and units are drawn as plain text: a '$' in a name must not start TeX-like math
+    with matplotlib.rc_context({"text.parse_math": False}):
+        text = build_html(study, fit, window, tradeoff, suggestions, influence)
     path = Path(path) if path is not None else study.out / "report.html"
     write_atomic(path, text)
     return path
