@@ -207,8 +207,13 @@ def cmd_suggest(args):
 
 
 def cmd_run(args):
+    from windowfinder.campaign.evaluators import DEFAULT_RUN_TIMEOUT
     from windowfinder.campaign.loop import run_campaign
 
+    if args.command is not None:
+        limit = DEFAULT_RUN_TIMEOUT if args.run_timeout is None else args.run_timeout
+        print("each run may take " + (f"up to {limit:g} s" if limit else "any time (no limit)")
+              + " (--run-timeout S to change, 0 for no limit)", file=sys.stderr)
     res = run_campaign(args.study_dir, command=args.command, function=args.function, budget=args.budget,
                        initial=args.initial, batch=args.batch, workers=args.workers,
                        scheduler=args.scheduler, dask_local=args.dask_local, run_timeout=args.run_timeout,
@@ -337,7 +342,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--workers", type=int, help="local worker processes (default: cores)")
     s.add_argument("--scheduler", help="address of an existing Dask scheduler, tcp://host:port")
     s.add_argument("--dask-local", type=int, metavar="N", help="start a local Dask cluster of N workers")
-    s.add_argument("--run-timeout", type=float, metavar="S", help="seconds one command may run")
+    s.add_argument("--run-timeout", type=float, metavar="S",
+                   help="seconds one command may run (default 3600; 0: no limit)")
     s = verb("report", cmd_report, "write one self-contained HTML report (out/report.html)")
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s = verb("testplan", cmd_testplan, "plan verification runs inside the window")

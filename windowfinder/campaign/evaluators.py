@@ -22,6 +22,15 @@ the paths of two CSV files in a fresh temporary folder, which is also the workin
 An argument that names an existing file relative to the current folder (``python sim.py {in} {out}``)
 is made absolute, because the program runs in its temporary folder.
 
+Each command runs under a small supervisor process (plain Python, standard library only) at the head of
+a process group of its own. When a run times out, or the campaign is aborted, the whole group is killed:
+the command and anything it started. When the campaign process dies, even by SIGKILL, the supervisor
+notices (Linux ``PR_SET_PDEATHSIG``, and a poll of its parent elsewhere) and kills the group, so no
+simulator is left running whose result nobody would record. A run may take at most
+:data:`DEFAULT_RUN_TIMEOUT` seconds unless ``timeout`` says otherwise (``0``: no limit). Temporary folders
+are named ``windowfinder-run-<pid>-*``; folders of a campaign process that no longer exists are removed
+when the next command evaluator starts.
+
 Where evaluators run (local pools, Dask) is :mod:`windowfinder.campaign.engines`.
 """
 
@@ -33,7 +42,9 @@ import inspect
 import io
 import math
 import os
+import re
 import shlex
+import shutil
 import signal
 import subprocess
 import sys
@@ -44,8 +55,13 @@ from dataclasses import asdict, dataclass, field
 from pathlib import Path
 
 from windowfinder.errors import InputError
+from windowfinder.inputs.lock import process_alive
 
 NOTE_CHARS = 240  # longest note kept in runs.csv
+# A run that takes longer than an hour is taken for a hung simulator unless --run-timeout says more
+# (common practice, no source).
+DEFAULT_RUN_TIMEOUT = 3600.0
+FOLDER_PREFIX = "windowfinder-run-"
 _EXTRA_OUT = ("run", "status", "note")
 
 
@@ -242,6 +258,58 @@ def _kill(proc: subprocess.Popen) -> None:
         pass
 
 
+# The supervisor: started in a new session (its pid is the group id), it runs the command in its group,
+# kills the group when its parent (the campaign) dies, and passes on the command's exit status.
+SUPERVISOR = r"""
+import ctypes, os, signal, subprocess, sys, threading, time
+parent = int(sys.argv[1])
+def end(*_):
+    os.killpg(0, signal.SIGKILL)
+signal.signal(signal.SIGTERM, end)
+try:
+    ctypes.CDLL(None, use_errno=True).prctl(1, signal.SIGTERM)  # PR_SET_PDEATHSIG
+except Exception:
+    pass
+def watch():
+    while os.getppid() == parent:
+        time.sleep(0.5)
+    end()
+threading.Thread(target=watch, daemon=True).start()
+if os.getppid() != parent:
+    end()
+code = subprocess.Popen(sys.argv[2:], stdin=subprocess.DEVNULL).wait()
+if code < 0:
+    signal.signal(-code, signal.SIG_DFL)
+    os.kill(os.getpid(), -code)
+sys.exit(code)
+"""
+
+
+def clean_stale_folders(root=None) -> int:
+    """Remove ``windowfinder-run-<pid>-*`` temporary folders of campaign processes that are gone."""
+    root = Path(root or tempfile.gettempdir())
+    removed = 0
+    try:
+        entries = list(os.scandir(root))
+    except OSError:
+        return 0
+    for e in entries:
+        m = re.fullmatch(re.escape(FOLDER_PREFIX) + r"(\d+)-.*", e.name)
+        if m and e.is_dir(follow_symlinks=False) and not process_alive(int(m.group(1))):
+            shutil.rmtree(e.path, ignore_errors=True)
+            removed += 1
+    return removed
+
+
+def _program_problem(program: str) -> str:
+    """Why ``program`` cannot be started ('' when it can): not found, or not executable."""
+    if shutil.which(program):
+        return ""
+    if os.sep in program and os.path.exists(program):
+        return f"command: program '{program}' is not executable (permission denied)"
+    return f"command: program '{program}' not found; check the path or install it"
+
+
 def _absolute(arg: str, program: bool) -> str:
     """``arg`` made absolute when it names an existing relative path (a bare program name is kept)."""
     if "{in}" in arg or "{out}" in arg or os.path.isabs(arg) or (program and os.sep not in arg):
@@ -267,8 +335,8 @@ class CommandEvaluator:
     factors, responses : sequence of str
         Factor and response names of the study, in study order.
     timeout : float or None
-        Seconds a run may take; the command (its whole process group) is then stopped and the run
-        recorded as failed.
+        Seconds a run may take (default :data:`DEFAULT_RUN_TIMEOUT`; ``0`` for no limit); the command
+        (its whole process group) is then stopped and the run recorded as failed.
     """
 
     def __init__(self, command: str, factors: Sequence[str], responses: Sequence[str],
@@ -284,15 +352,19 @@ class CommandEvaluator:
             if key not in text:
                 raise InputError(f"--command '{command}': {key} is missing; the program reads the settings "
                                  "from {in} and writes the responses to {out}")
-        if timeout is not None and not timeout > 0:
-            raise InputError(f"--run-timeout {timeout}: must be a positive number of seconds")
+        if timeout is None:
+            timeout = DEFAULT_RUN_TIMEOUT
+        if isinstance(timeout, bool) or not isinstance(timeout, (int, float)) or not (
+                timeout >= 0 and math.isfinite(timeout)):
+            raise InputError(f"--run-timeout {timeout}: must be a number of seconds > 0 (0: no limit)")
+        clean_stale_folders()
         self.argv = [_absolute(a, program=(i == 0)) for i, a in enumerate(argv)]
         self.factors = list(factors)
         self.responses = list(responses)
-        self.timeout = timeout
+        self.timeout = float(timeout) or None
 
     def __call__(self, run: str, settings: dict, seed: int | None = None) -> RunOutcome:
-        with tempfile.TemporaryDirectory(prefix="windowfinder-run-") as tmp:
+        with tempfile.TemporaryDirectory(prefix=f"{FOLDER_PREFIX}{os.getpid()}-") as tmp:
             folder = Path(tmp)
             inp, out = folder / "in.csv", folder / "out.csv"
             buf = io.StringIO()
@@ -310,14 +382,14 @@ class CommandEvaluator:
         """Run the program; return '' on exit code 0, else the reason it failed."""
         err_path = folder / "stderr.txt"
         program = self.argv[0]
+        problem = _program_problem(program)
+        if problem:
+            return problem
         with open(folder / "stdout.txt", "wb") as so, open(err_path, "wb") as se:
             try:
-                proc = subprocess.Popen(argv, stdin=subprocess.DEVNULL, stdout=so, stderr=se, cwd=folder,
+                proc = subprocess.Popen([sys.executable, "-I", "-c", SUPERVISOR, str(os.getpid()), *argv],
+                                        stdin=subprocess.DEVNULL, stdout=so, stderr=se, cwd=folder,
                                         start_new_session=True)
-            except FileNotFoundError:
-                return f"command: program '{program}' not found; check the path or install it"
-            except PermissionError:
-                return f"command: program '{program}' is not executable (permission denied)"
             except OSError as e:
                 return f"command: cannot start '{program}' ({e})"
             with _ACTIVE_LOCK:
@@ -380,5 +452,5 @@ class CommandEvaluator:
         return outcome
 
 
-__all__ = ["CommandEvaluator", "FunctionEvaluator", "RunOutcome", "one_line", "outcome_from_values",
-           "resolve_callable", "stop_commands"]
+__all__ = ["DEFAULT_RUN_TIMEOUT", "CommandEvaluator", "FunctionEvaluator", "RunOutcome",
+           "clean_stale_folders", "one_line", "outcome_from_values", "resolve_callable", "stop_commands"]

@@ -29,12 +29,13 @@ except ImportError:  # pragma: no cover - Windows
 LOCK_NAME = ".windowfinder.lock"
 
 
-def _alive(pid: int) -> bool:
+def process_alive(pid: int) -> bool:
+    """True when a process with this id exists (on this machine)."""
     if pid <= 0:
         return False
     try:
         os.kill(pid, 0)
-    except ProcessLookupError:
+    except (ProcessLookupError, OverflowError):  # gone, or no valid process id at all
         return False
     except PermissionError:  # exists, owned by someone else
         return True
@@ -112,7 +113,7 @@ class StudyLock:
                 continue
             old = _read_pid(fd)
             if old > 0 and old != os.getpid():
-                if _alive(old):  # written by hand or by an older version that did not use flock
+                if process_alive(old):  # written by hand or by an older version that did not use flock
                     os.close(fd)
                     raise InputError(f"{self.path.parent}: study is busy, held by pid {old}; wait for it "
                                      f"to finish (or delete {LOCK_NAME} if that process is not windowfinder)")
