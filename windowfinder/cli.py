@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import math
 import os
 import sys
 from pathlib import Path
@@ -130,6 +131,8 @@ def _set_point(items, spec):
             out[name.strip()] = float(value)
         except ValueError:
             raise InputError(f"--set-point '{it}': '{value}' is not a number") from None
+        if not math.isfinite(out[name.strip()]):
+            raise InputError(f"--set-point '{it}': '{value}' is not a finite number")
     return out
 
 

@@ -13,7 +13,10 @@ def _check_xy(X, y=None, d=None):
     if X.ndim == 1:
         X = X.reshape(-1, 1) if d in (None, 1) else X.reshape(1, -1)
     if X.ndim != 2 or not np.all(np.isfinite(X)):
-        raise InputError("factor settings must be a finite 2-D table (runs x factors)")
+        bad = int((~np.isfinite(X)).sum()) if X.ndim == 2 else 0
+        raise InputError(f"model input: factor settings must be a finite 2-D table (runs x factors), got "
+                         f"shape {X.shape}" + (f" with {bad} NaN/infinite cells" if bad else "")
+                         + "; check the settings passed in")
     if d is not None and X.shape[1] != d:
         raise InputError(f"factor settings have {X.shape[1]} columns, the model was fitted on {d}")
     if y is None:
