@@ -39,7 +39,7 @@ from conftest import snapshot
 HERE = Path(__file__).parent
 
 
-def _study_text(fa: str, fb: str, resp: str, name: str = "odd names") -> str:
+def _study_text(fa: str, fb: str, resp: str, name: str = "odd names", goal: str = "maximize") -> str:
     return textwrap.dedent(f"""\
         [study]
         name = {toml_string(name)}
@@ -60,7 +60,7 @@ def _study_text(fa: str, fb: str, resp: str, name: str = "odd names") -> str:
         [[response]]
         name = {toml_string(resp)}
         unit = "%"
-        goal = "maximize"
+        goal = "{goal}"
         min = 2.0
         """)
 
@@ -89,10 +89,12 @@ names = st.one_of(safe_names, safe_names, safe_names, odd_names)
 three_names = st.lists(names, min_size=3, max_size=3, unique_by=str.strip)
 
 
-def _completes(cwd: Path, fa: str, fb: str, resp: str, capsys) -> None:
+def _completes(cwd: Path, fa: str, fb: str, resp: str, capsys, tradeoff: bool = False) -> None:
+    """check refuses with one line, or new..report completes (trade-off only when asked: it is slow)."""
     d = cwd / "s"
     d.mkdir()
-    (d / "study.toml").write_text(_study_text(fa, fb, resp), encoding="utf-8")
+    (d / "study.toml").write_text(_study_text(fa, fb, resp, goal="maximize" if tradeoff else "none"),
+                                  encoding="utf-8")
     code = main(["check", str(d)])
     err = capsys.readouterr().err
     ok = all(_allowed(n) for n in (fa, fb, resp)) and len({n.strip() for n in (fa, fb, resp)}) == 3
@@ -116,6 +118,10 @@ def _completes(cwd: Path, fa: str, fb: str, resp: str, capsys) -> None:
     filled.to_csv(plan, index=False)
     assert main(["verify", str(d), str(plan)]) == 0
     assert main(["report", str(d)]) == 0
+    if tradeoff:
+        assert main(["tradeoff", str(d)]) == 0
+        header = _csv_header(d / "out" / "tradeoff.csv")
+        assert header[:2] == [fa, fb] and f"{resp}_pred" in header
     out = capsys.readouterr()
     # every file stays readable, and every name comes back as it was written
     table = read_runs(d / "runs.csv", study.spec)
@@ -136,7 +142,7 @@ def test_odd_names_refused_at_check_or_round_trip(tmp_path_factory, three, capsy
 
 @pytest.mark.parametrize("names_", [("a,b", 'say "x"', "温度 µ%"), ("$\\alpha_{$", "<b>x</b>", "p|q *r*")])
 def test_names_with_commas_quotes_tex_and_html_round_trip(tmp_path, names_, capsys):
-    _completes(tmp_path, *names_, capsys)
+    _completes(tmp_path, *names_, capsys, tradeoff="," in names_[0])
     md = (tmp_path / "s" / "out" / "report.html").read_text()
     assert "<b>x</b>" not in md  # escaped in the page
 
