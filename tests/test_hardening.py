@@ -380,3 +380,18 @@ def test_run_prints_its_default_timeout(study_dir, tmp_path, capsys):
                  "--budget", "5", "--workers", "1"])
     assert code == 0
     assert "up to 3600 s" in capsys.readouterr().err
+
+
+def test_window_markdown_escapes_names():
+    import html
+    import re
+
+    from windowfinder.export.files import md
+
+    for text in ["<img src=x onerror=alert(1)>", "a|b", "*bold* _it_ `code` [l](u) ~s~ #h $x$ \\ !"]:
+        out = md(text)
+        assert "<" not in out and ">" not in out  # no raw HTML can reach the page
+        assert not re.search(r"(?<!\\)[|*_`\[\]~#$!]", out)  # every Markdown mark is escaped
+        # CommonMark 0.30 §2.4: a backslash before ASCII punctuation is that character; entities decode
+        # as HTML entities (html.unescape of the standard library)
+        assert html.unescape(re.sub(r"\\([!-/:-@\[-`{-~])", r"\1", out)) == text
