@@ -17,7 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from windowfinder.errors import InputError
-from windowfinder.inputs.names import RESERVED, name_problem
+from windowfinder.inputs.names import name_problem
 from windowfinder.inputs.storage import read_bytes, readable_file
 
 GOALS = ("maximize", "minimize", "target", "none")
