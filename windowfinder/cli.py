@@ -108,6 +108,9 @@ def format_diagnostics(res, spec) -> str:
         lines.append(f"{d.response:<16} {d.model:<9} {d.n:>3} {d.loo_q2:>7.2f} "
                      f"{d.loo_rmse:>8.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
     for d in res.diagnostics:
+        if d.block_offsets:
+            lines.append(f"{d.response}: block offsets ({spec.response(d.response).unit}, sd {d.block_sd:.3g}): "
+                         + ", ".join(f"{k} {v:+.3g}" for k, v in d.block_offsets.items()))
         if d.choice:
             lines.append(f"{d.response}: " + ModelChoice.from_dict(d.choice).text())
         if d.terms:

@@ -205,6 +205,10 @@ class Study:
         X, Y, works = self.training_data()
         kinds = {r.name: r.model if kind is None else kind for r in self.spec.responses}
         d = self.spec.d
+        blocks = self.runs.blocks(self.runs.completed())
+        if blocks is not None and any(k not in ("gp", "auto") for k in kinds.values()):
+            raise InputError(f"{self.runs_path.name}: the block column needs the Gaussian-process model "
+                             "(its random block offsets); fit with --model gp or remove the block column")
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
             need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)
@@ -217,11 +221,13 @@ class Study:
         transforms = {r.name: (r.transform, r.bounds) for r in self.spec.responses}
         with threadpool_limits(1, user_api="blas"):  # small matrices: threads cost more than they give
             sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
-                                        kind=kinds, n_restarts=n_restarts, seed=self.spec.seed)
+                                        kind=kinds, n_restarts=n_restarts, seed=self.spec.seed,
+                                        blocks=blocks)
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
-            y = y[np.isfinite(y)]
+            # with blocks the model holds the block-corrected values: checks run on those
+            y = None if blocks is not None else y[np.isfinite(y)]
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
                                   self.spec.spans, choice=sur.choices.get(r.name)))
         warnings = list(self.runs.warnings)

@@ -1,7 +1,8 @@
 """The run table (runs.csv): one row per run, validated against the study.
 
 Columns: ``run`` (unique id), one per factor, one per response, optional ``status``
-(``done`` | ``planned`` | ``failed``) and optional ``note``. Units live in study.toml. Empty response
+(``done`` | ``planned`` | ``failed``), optional ``block`` (day, lot, operator: a label; runs of one block
+share a random offset, :mod:`windowfinder.models.blocks`) and optional ``note``. Units live in study.toml. Empty response
 cells on a ``done`` run mean "not measured"; a ``failed`` run gave no usable product and feeds the
 failure model. Every problem is refused with one line naming the file, the row (line number and run id)
 and the column. The file is only ever appended to or rewritten atomically (temporary file, fsync, rename):
@@ -26,6 +27,7 @@ from windowfinder.inputs.spec import MAX_MAGNITUDE, StudySpec
 from windowfinder.inputs.storage import read_bytes, readable_file, write_atomic
 
 STATUSES = ("done", "planned", "failed")
+BLOCK = "block"
 # A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a
 # wider range (common practice, no source).
 FAR_OUTSIDE = 10.0
@@ -82,6 +84,13 @@ class RunTable:
         """Runs that carry information: done and failed."""
         return self.frame[self.status.isin(["done", "failed"])]
 
+    def blocks(self, frame: pd.DataFrame | None = None) -> np.ndarray | None:
+        """Block label of each run, or None when the table has no block labels."""
+        frame = self.frame if frame is None else frame
+        if BLOCK not in self.frame.columns or not (self.frame[BLOCK].fillna("").astype(str) != "").any():
+            return None
+        return frame[BLOCK].fillna("").astype(str).to_numpy()
+
     def X(self, frame: pd.DataFrame | None = None) -> np.ndarray:
         frame = self.frame if frame is None else frame
         return frame[self.spec.factor_names].to_numpy(dtype=float)
@@ -103,10 +112,11 @@ class RunTable:
 
 
 def empty_table(spec: StudySpec) -> pd.DataFrame:
-    cols = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    cols = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, "note"]
     df = pd.DataFrame({c: pd.Series(dtype=float) for c in cols})
     df["run"] = df["run"].astype(str)
     df["status"] = df["status"].astype(str)
+    df[BLOCK] = df[BLOCK].astype(str)
     df["note"] = df["note"].astype(str)
     return df
 
@@ -199,7 +209,7 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     if len(set(header)) != len(header):
         dup = next(c for c in header if header.count(c) > 1)
         raise InputError(f"{name}: column '{dup}' appears twice; keep one")
-    known = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    known = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, "note"]
     for c in header:
         if c not in known:
             close = difflib.get_close_matches(c, known, n=1, cutoff=0.5)
@@ -228,8 +238,11 @@ def read_runs(path, spec: StudySpec) -> RunTable:
         status = status or "done"
         if status not in STATUSES:
             raise InputError(f"{where}: status '{status}' unknown; use done, planned or failed")
-        rec = {"run": run, "status": status,
+        rec = {"run": run, "status": status, BLOCK: cells[col[BLOCK]].strip() if BLOCK in col else "",
                "note": cells[col["note"]].strip() if "note" in col else ""}
+        if BLOCK in col and not rec[BLOCK] and status != "planned":
+            raise InputError(f"{where}: '{BLOCK}' is empty; give every run made its block label (day, lot, "
+                             f"operator) or remove the {BLOCK} column")
         for f in spec.factors:
             rec[f.name] = v = _number(cells[col[f.name]], where, f.name, allow_blank=False)
             if not -FAR_OUTSIDE <= f.to_coded(v) <= 1 + FAR_OUTSIDE:
@@ -367,5 +380,7 @@ def append_runs(path, spec: StudySpec, new: pd.DataFrame) -> None:
 def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
     """Rewrite the whole run table atomically (standard column order)."""
     header = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
+    if BLOCK in frame.columns and (frame[BLOCK].fillna("").astype(str) != "").any():
+        header.insert(-1, BLOCK)   # only when used, so tables without blocks stay as they were
     text = format_header(header) + format_rows(frame, header)
     write_atomic(path, text)

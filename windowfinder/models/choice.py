@@ -28,6 +28,7 @@ from scipy import stats
 
 from windowfinder.errors import InputError
 from windowfinder.inputs.spec import MODELS
+from windowfinder.models.blocks import fit_blocked
 from windowfinder.models.gp import GPModel
 from windowfinder.models.polynomial import PolynomialModel, backward_eliminate
 
@@ -133,7 +134,7 @@ def _choice(requested, key, m, scores, notes=()):
     return m, ModelChoice(requested, key, scores, list(notes), terms)
 
 
-def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0):
+def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blocks=None):
     """Fit the model a response asks for (or, with ``"auto"``, the best by leave-one-out).
 
     Parameters
@@ -144,6 +145,9 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0):
     transform : str or Transform
     n_restarts, seed : int
         For the Gaussian process.
+    blocks : array (n,) or None
+        Block label per run: the Gaussian process with a random offset per block
+        (:func:`windowfinder.models.blocks.fit_blocked`); ``model`` must then be ``"gp"`` or ``"auto"``.
 
     Returns
     -------
@@ -152,6 +156,13 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0):
     if model not in MODELS:
         raise InputError(f"model '{model}' is unknown; use one of {', '.join(MODELS)}")
     notes = []
+    if blocks is not None:
+        if model not in ("gp", "auto"):
+            raise InputError(f"model '{model}' cannot carry block offsets; use model = 'gp' or 'auto', or "
+                             "remove the block column")
+        m = fit_blocked(GPModel(transform=transform, n_restarts=n_restarts, random_state=seed), X, y, blocks)
+        return _choice(model, "gp", m, {"gp": loo_log_density(m)},
+                       ["runs in blocks: the Gaussian process with a random offset per block"])
     if model == "gp":
         m = GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)
         return _choice(model, "gp", m, {"gp": loo_log_density(m)})

@@ -53,6 +53,12 @@ class ModelDiagnostics:
     noise_sd : float
         Run-to-run noise sd in natural units; for a transformed response a delta-method approximation at
         the mean latent response.
+    block_offsets : dict[str, float]
+        Fitted offset of each block (day, lot, operator) in natural units (delta method at the mean
+        latent response for a transformed response); empty without a block column
+        (:mod:`windowfinder.models.blocks`).
+    block_sd : float
+        Standard deviation of the block offsets (natural units); NaN without blocks.
     warnings : list[str]
     measured, loo_median, loo_low, loo_high : list[float]
         Per-run measured value and LOO median and 95% interval (natural units), for plots.
@@ -66,6 +72,8 @@ class ModelDiagnostics:
     coverage95: float
     length_scales: dict = field(default_factory=dict)
     noise_sd: float = float("nan")
+    block_offsets: dict = field(default_factory=dict)
+    block_sd: float = float("nan")
     warnings: list = field(default_factory=list)
     measured: list = field(default_factory=list)
     loo_median: list = field(default_factory=list)
@@ -227,10 +235,14 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
         names = list(factor_names) if len(factor_names) == model.X_train_.shape[1] else None
         terms = model.term_table(names).to_dict("records")
     z_bar = float(np.mean(model.z_train_))
-    noise_sd = float(model.noise_std_ * tr.inverse_slope(z_bar))
+    slope = float(tr.inverse_slope(z_bar))
+    noise_sd = float(model.noise_std_ * slope)
+    offsets = {k: v * slope for k, v in getattr(model, "block_offsets_", {}).items()}
+    block_sd = float(model.block_sd_ * slope) if offsets else float("nan")
     return ModelDiagnostics(
         response=response_name, model=model.kind, n=n, loo_q2=q2, loo_rmse=rmse, coverage95=coverage,
-        length_scales=scales, noise_sd=noise_sd, warnings=notes, measured=y.tolist(),
+        length_scales=scales, noise_sd=noise_sd, block_offsets=offsets, block_sd=block_sd,
+        warnings=notes, measured=y.tolist(),
         loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist(),
         choice={} if choice is None else choice.to_dict(), terms=terms)
 

@@ -185,6 +185,7 @@ class GPModel(_ResponseModel):
         max_exact = MAX_EXACT_RUNS if self.max_exact is None else int(self.max_exact)
         m = SUBSET_RUNS if self.n_subset is None else int(self.n_subset)
         self.inducing_, self.note_ = None, ""
+        self.block_var_ = 0.0   # set by windowfinder.models.blocks.fit_blocked
         if n <= m:
             gp = self._optimise(X, ys, self._kernel(X.shape[1]), self.n_restarts)
         else:
@@ -250,8 +251,8 @@ class GPModel(_ResponseModel):
         if not return_std:
             return mean, None
         var = var * self.y_scale_ ** 2
-        if noise:
-            var = var + self.noise_std_ ** 2
+        if noise:   # a future run: run-to-run noise, plus a new block's offset (windowfinder.models.blocks)
+            var = var + self.noise_std_ ** 2 + self.block_var_
         return mean, np.sqrt(var)
 
     def cross_covariance(self, A, B, white_a=None):

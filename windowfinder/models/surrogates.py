@@ -44,7 +44,7 @@ class Surrogates:
         return np.ones(X.shape[0]) if self.failure is None else self.failure.predict_proba(X)
 
     @classmethod
-    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0):
+    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0, blocks=None):
         """Fit one model per response.
 
         Parameters
@@ -59,6 +59,9 @@ class Surrogates:
         kind : {"gp", "quadratic", "linear", "auto"} or dict[str, str]
             One setting for every response, or one per response (missing ones: ``"gp"``); ``"auto"``
             picks by leave-one-out (:func:`windowfinder.models.choice.fit_response`).
+        blocks : array (n,) or None
+            Block label of each run (day, lot, operator); with two or more blocks each GP response model
+            carries a random offset per block (:func:`windowfinder.models.blocks.fit_blocked`).
         """
         kinds = {name: (kind.get(name, "gp") if isinstance(kind, dict) else kind) for name in Y}
         for k in kinds.values():
@@ -66,6 +69,7 @@ class Surrogates:
                 raise InputError(f"model kind '{k}' is unknown; use one of {', '.join(MODELS)}")
         X = _check_xy(X)
         n = X.shape[0]
+        blocks = None if blocks is None else np.asarray(blocks, object).ravel()
         ok = np.ones(n, bool) if works is None else np.asarray(works, bool).ravel()
         if ok.shape[0] != n:
             raise InputError(f"{n} runs of factor settings but {ok.shape[0]} run outcomes (works)")
@@ -80,7 +84,8 @@ class Surrogates:
             t = t if isinstance(t, (str, Transform)) else Transform(*t)
             try:
                 models[name], choices[name] = fit_response(X[rows], y[rows], kinds[name], t,
-                                                           n_restarts=n_restarts, seed=seed)
+                                                           n_restarts=n_restarts, seed=seed,
+                                                           blocks=None if blocks is None else blocks[rows])
             except InputError as err:
                 raise InputError(f"response {name}: {err}") from None
         failure = None

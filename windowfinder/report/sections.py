@@ -150,6 +150,12 @@ def models(c: Content) -> str:
         fig = image(figure_png(loo_figure(d, response=r)),
                     f"Measured {r.name} against its leave-one-out prediction with 95 % bars for {d.n} runs.",
                     "Dashed: prediction equals measurement. Squares: runs outside their 95 % bar.")
+        if d.block_offsets:
+            out.append(html_table(pd.DataFrame({"block": list(d.block_offsets),
+                                                f"offset ({r.unit})": list(d.block_offsets.values())}),
+                                  f"Block offsets of {r.name}: shift of each block against the average "
+                                  f"block (sd {d.block_sd:.3g} {r.unit}); the model removes them, so a "
+                                  "shift between blocks is read neither as noise nor as a factor effect"))
         out.append(f"<div class=\"side\">{fig}<div>{para(text, 'verdict bad' if bad else 'verdict')}"
                    f"{bullets(d.warnings)}</div></div>")
     return "\n".join(out)
