@@ -69,13 +69,15 @@ def cmd_check(args):
 
 def cmd_design(args):
     study = _load(args)
-    frame = study.design(args.method, runs=args.runs, centre=args.centre, seed=args.seed)
+    frame = study.design(args.method, runs=args.runs, centre=args.centre, seed=args.seed,
+                         blocks=args.blocks)
     from windowfinder.export.files import write_csv
 
     path = write_csv(_out(study, "design.csv"), frame)
     study.add_runs(frame)
     print(f"{len(frame)} planned runs ({args.method}) appended to {study.runs_path}; copy in {path}")
-    print(frame[["run", *study.spec.factor_names]].to_string(index=False))
+    shown = ["run", *study.spec.factor_names, *(["block"] if "block" in frame else [])]
+    print(frame[shown].to_string(index=False))
 
 
 def cmd_fit(args):
@@ -319,6 +321,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--centre", type=int,
                    help="extra replicated centre runs (default 1 for box-behnken and rotatable ccd, else 0)")
     s.add_argument("--seed", type=int, help="random seed (default: the study's)")
+    s.add_argument("--blocks", type=int,
+                   help="spread the runs over this many blocks (days, lots): a block column B1, B2, ...")
     s = verb("fit", cmd_fit, "fit one model per response and print leave-one-out diagnostics")
     s.add_argument("--model", help=argparse.SUPPRESS)  # moved to study.toml; refused with a pointer
     s.add_argument("--restarts", type=int, default=5, help="optimizer restarts for the GP")

@@ -116,18 +116,45 @@ class Study:
 
     # -- designs ---------------------------------------------------------------------------------
     def design(self, method: str, runs: int | None = None, centre: int | None = None,
-               seed: int | None = None) -> pd.DataFrame:
+               seed: int | None = None, blocks: int | None = None) -> pd.DataFrame:
         """A new design in natural units, rounded to each step, in randomised run order.
 
         ``centre=None`` adds one centre run to Box–Behnken and rotatable central composite designs,
         which cannot support a full quadratic model without one, and none to the others.
+        ``blocks``: spread the runs over this many blocks (days, lots), labelled ``B1``, ``B2``, ... in
+        the ``block`` column, run order randomised within each block: a space-filling design becomes a
+        sliced Latin hypercube (each block a Latin hypercube of its own), any other design is dealt to the
+        blocks in farthest-point order (:mod:`windowfinder.inputs.slices`).
         """
         seed = self.spec.seed if seed is None else seed
         if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or not 0 <= seed <= MAX_SEED:
             raise InputError(f"--seed {seed!r}: must be a whole number from 0 to {MAX_SEED}")
         if centre is None:
             centre = 1 if method in ("box-behnken", "ccd-inscribed", "ccd-circumscribed") else 0
-        U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
+        block_of = None
+        made = self.runs.completed()
+        if blocks is not None and len(made) and self.runs.blocks(made) is None:
+            raise InputError(f"{self.runs_path.name}: its {len(made)} runs made have no block label; add a "
+                             "block column with their labels (day, lot) before designing in blocks")
+        if blocks is not None and method == "space-filling":
+            from windowfinder.inputs.slices import sliced_latin_hypercube
+
+            n = 10 * self.spec.d if runs is None else int(runs)
+            if blocks < 1 or n % blocks:
+                raise InputError(f"--runs {n} cannot be split evenly over --blocks {blocks}; use a multiple "
+                                 f"of {blocks} (e.g. {max(blocks, n - n % blocks)}) or another block count")
+            designs.design_size(method, self.spec.d, runs=n, centre=centre)   # validates the sizes
+            U, block_of = sliced_latin_hypercube(self.spec.d, blocks, n // blocks, seed=seed)
+            U = designs._with_centre(U, centre)
+        else:
+            U = designs.make_design(method, self.spec.d, runs=runs, centre=centre, seed=seed)
+        if blocks is not None:
+            from windowfinder.inputs.slices import spread_over_blocks
+
+            if block_of is None:
+                block_of = spread_over_blocks(U, blocks, seed=seed)
+            else:   # extra centre runs go to the blocks in turn
+                block_of = np.concatenate([block_of, np.arange(centre) % blocks])
         if method == "ccd-circumscribed":  # axial runs beyond the bounds on purpose: keep them exact
             X = self.spec.to_natural(U)
         elif method == "space-filling":
@@ -135,9 +162,13 @@ class Study:
         else:
             X = self.spec.round_to_step(self.spec.to_natural(U))
         order = np.random.default_rng(seed).permutation(len(X))
+        if block_of is not None:   # blocks in turn, random order inside each (randomised within blocks)
+            order = order[np.argsort(block_of[order], kind="stable")]
         X = X[order]
         frame = pd.DataFrame(X, columns=self.spec.factor_names)
         frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
+        if block_of is not None:
+            frame["block"] = [f"B{b + 1}" for b in block_of[order]]
         for r in self.spec.response_names:
             frame[r] = np.nan
         frame["status"] = "planned"
@@ -208,7 +239,7 @@ class Study:
         blocks = self.runs.blocks(self.runs.completed())
         if blocks is not None and any(k not in ("gp", "auto") for k in kinds.values()):
             raise InputError(f"{self.runs_path.name}: the block column needs the Gaussian-process model "
-                             "(its random block offsets); fit with --model gp or remove the block column")
+                             "(its random block offsets); set model = 'gp' or 'auto' in study.toml or remove the block column")
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
             need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)
