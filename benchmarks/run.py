@@ -16,7 +16,7 @@ import sys
 import time
 from pathlib import Path
 
-SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale")
+SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale", "failures")
 
 
 def main(argv=None) -> int:

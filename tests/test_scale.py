@@ -265,6 +265,6 @@ def test_failure_model_uses_a_subset_above_its_size():
     X = rng.random((90, 2))
     works = X[:, 0] < 0.6
     fm = FailureModel(n_restarts=0, n_subset=40).fit(X, works)
-    assert fm.gpc_.base_estimator_.X_train_.shape[0] == 40 and "40 space-filling runs of 90" in fm.note_
+    assert fm.X_train_.shape[0] == 40 and "40 space-filling runs of 90" in fm.note_
     p = fm.predict_proba(np.array([[0.1, 0.5], [0.95, 0.5]]))
     assert p[0] > 0.5 > p[1]
