@@ -18,7 +18,7 @@ import pandas as pd
 from windowfinder.inputs import designs
 from windowfinder.errors import InputError
 from windowfinder.inputs.names import toml_string
-from windowfinder.inputs.runs import RunTable, append_runs, next_ids, read_runs, write_runs
+from windowfinder.inputs.runs import FAILED_LIMIT, RunTable, append_runs, next_ids, read_runs, write_runs
 from windowfinder.inputs.spec import MAX_SEED, StudySpec
 from windowfinder.inputs.storage import ensure_folder, readable_file, write_atomic
 
@@ -223,6 +223,25 @@ class Study:
         Y = {r: np.where(works, comp[r].to_numpy(dtype=float), np.nan) for r in self.spec.response_names}
         return X, Y, works
 
+    def censored_data(self):
+        """Failed runs that name the limit they broke, per response: ``{response: (mask, bound, side)}``.
+
+        ``mask`` runs over the completed runs (the rows of :meth:`training_data`); ``side`` is
+        ``"above"`` for a broken max (the value lay above it) and ``"below"`` for a broken min.
+        """
+        broke = self.runs.broken_limits(self.runs.completed()).to_numpy()
+        out = {}
+        for r in self.spec.responses:
+            for side, bound, word in (("max", r.max, "above"), ("min", r.min, "below")):
+                mask = broke == f"{r.name}:{side}"
+                if mask.any():
+                    if r.name in out:   # both limits of one response named: min and max runs differ
+                        raise InputError(f"{self.runs_path.name}: failed runs name both the min and the max of "
+                                         f"'{r.name}'; censored values on both sides are not supported, "
+                                         f"clear {FAILED_LIMIT} on one side")
+                    out[r.name] = (mask, float(bound), word)
+        return out
+
     def fit(self, kind: str | None = None, n_restarts: int = 5) -> FitResult:
         """Fit one model per response (and a failure model when runs failed); LOO diagnostics.
 
@@ -240,6 +259,12 @@ class Study:
         if blocks is not None and any(k not in ("gp", "auto") for k in kinds.values()):
             raise InputError(f"{self.runs_path.name}: the block column needs the Gaussian-process model "
                              "(its random block offsets); set model = 'gp' or 'auto' in study.toml or remove the block column")
+        censored = self.censored_data()
+        for mask, _, _ in censored.values():   # explained by the limit they broke, not by the failure model
+            works = works | mask
+        if blocks is not None and censored:
+            raise InputError(f"{self.runs_path.name}: failed_limit together with a block column is not supported "
+                             "yet; clear failed_limit (the runs then feed the failure model) or the block column")
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
             need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)
@@ -253,12 +278,12 @@ class Study:
         with threadpool_limits(1, user_api="blas"):  # small matrices: threads cost more than they give
             sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
                                         kind=kinds, n_restarts=n_restarts, seed=self.spec.seed,
-                                        blocks=blocks)
+                                        blocks=blocks, censored=censored)
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
             # with blocks the model holds the block-corrected values: checks run on those
-            y = None if blocks is not None else y[np.isfinite(y)]
+            y = None if blocks is not None or r.name in censored else y[np.isfinite(y)]
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
                                   self.spec.spans, choice=sur.choices.get(r.name)))
         warnings = list(self.runs.warnings)
@@ -266,12 +291,15 @@ class Study:
         for r in self.spec.responses:
             moved = getattr(sur.models[r.name], "at_bound_", None)
             if moved is not None and moved.any():
-                at = ids[np.isfinite(Y[r.name])][moved]
+                obs = ids[np.isfinite(Y[r.name])]
+                at = obs[moved[:len(obs)]]   # censored runs, when any, follow the measured ones
                 warnings.append(f"{r.name}: {len(at)} value(s) exactly at a physical bound kept; the "
                                 f"{r.transform} transform fits them just inside it (runs "
                                 f"{', '.join(at[:10])}{' ...' if len(at) > 10 else ''})")
         for dg in diags:
             warnings += [f"{dg.response}: {w}" for w in dg.warnings]
+        for name in censored:
+            warnings.append(f"{name}: {sur.models[name].note_}")
         if sur.failure is not None and getattr(sur.failure, "note_", ""):
             warnings.append(f"failure model: {sur.failure.note_}")
         return FitResult(sur, diags, X, warnings)

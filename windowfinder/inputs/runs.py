@@ -2,9 +2,11 @@
 
 Columns: ``run`` (unique id), one per factor, one per response, optional ``status``
 (``done`` | ``planned`` | ``failed``), optional ``block`` (day, lot, operator: a label; runs of one block
-share a random offset, :mod:`windowfinder.models.blocks`) and optional ``note``. Units live in study.toml. Empty response
-cells on a ``done`` run mean "not measured"; a ``failed`` run gave no usable product and feeds the
-failure model. Every problem is refused with one line naming the file, the row (line number and run id)
+share a random offset, :mod:`windowfinder.models.blocks`), optional ``failed_limit`` and optional ``note``.
+Units live in study.toml. Empty response cells on a ``done`` run mean "not measured"; a ``failed`` run gave
+no usable product and feeds the failure model, unless its ``failed_limit`` names the limit it broke
+(``response``, or ``response:min`` / ``response:max`` when the response has both): then it is a censored
+value of that response beyond its limit and not a failure-model run. Every problem is refused with one line naming the file, the row (line number and run id)
 and the column. The file is only ever appended to or rewritten atomically (temporary file, fsync, rename):
 a command that fails leaves it byte-identical.
 """
@@ -28,6 +30,7 @@ from windowfinder.inputs.storage import read_bytes, readable_file, write_atomic
 
 STATUSES = ("done", "planned", "failed")
 BLOCK = "block"
+FAILED_LIMIT = "failed_limit"
 # A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a
 # wider range (common practice, no source).
 FAR_OUTSIDE = 10.0
@@ -77,6 +80,11 @@ class RunTable:
     def failed(self) -> pd.DataFrame:
         return self.frame[self.status == "failed"]
 
+    def broken_limits(self, frame: pd.DataFrame | None = None) -> pd.Series:
+        """``"response:min"`` / ``"response:max"`` for failed runs that name the limit they broke, else ""."""
+        frame = self.frame if frame is None else frame
+        return frame[FAILED_LIMIT].fillna("").astype(str)
+
     def planned(self) -> pd.DataFrame:
         return self.frame[self.status == "planned"]
 
@@ -112,11 +120,12 @@ class RunTable:
 
 
 def empty_table(spec: StudySpec) -> pd.DataFrame:
-    cols = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, "note"]
+    cols = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, FAILED_LIMIT, "note"]
     df = pd.DataFrame({c: pd.Series(dtype=float) for c in cols})
     df["run"] = df["run"].astype(str)
     df["status"] = df["status"].astype(str)
     df[BLOCK] = df[BLOCK].astype(str)
+    df[FAILED_LIMIT] = df[FAILED_LIMIT].astype(str)
     df["note"] = df["note"].astype(str)
     return df
 
@@ -209,7 +218,7 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     if len(set(header)) != len(header):
         dup = next(c for c in header if header.count(c) > 1)
         raise InputError(f"{name}: column '{dup}' appears twice; keep one")
-    known = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, "note"]
+    known = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, FAILED_LIMIT, "note"]
     for c in header:
         if c not in known:
             close = difflib.get_close_matches(c, known, n=1, cutoff=0.5)
@@ -238,7 +247,9 @@ def read_runs(path, spec: StudySpec) -> RunTable:
         status = status or "done"
         if status not in STATUSES:
             raise InputError(f"{where}: status '{status}' unknown; use done, planned or failed")
+        broke = cells[col[FAILED_LIMIT]].strip() if FAILED_LIMIT in col else ""
         rec = {"run": run, "status": status, BLOCK: cells[col[BLOCK]].strip() if BLOCK in col else "",
+               FAILED_LIMIT: _failed_limit(broke, status, spec, where),
                "note": cells[col["note"]].strip() if "note" in col else ""}
         if BLOCK in col and not rec[BLOCK] and status != "planned":
             raise InputError(f"{where}: '{BLOCK}' is empty; give every run made its block label (day, lot, "
@@ -274,6 +285,35 @@ def read_runs(path, spec: StudySpec) -> RunTable:
                                  f"{strict.iloc[0]:g} lies beyond the physical bounds of transform = "
                                  f"'{r.transform}'; check the value or the bounds in study.toml")
     return table
+
+
+def _failed_limit(text: str, status: str, spec: StudySpec, where: str) -> str:
+    """Validate a ``failed_limit`` cell; ``"response:min"`` / ``"response:max"`` or ""."""
+    if not text:
+        return ""
+    if status != "failed":
+        raise InputError(f"{where}: {FAILED_LIMIT} '{text}' is set but status is '{status}'; set status = "
+                         f"failed or clear the {FAILED_LIMIT} cell")
+    name, _, side = (p.strip() for p in text.partition(":"))
+    names = [r.name for r in spec.responses if r.has_limits]
+    if name not in spec.response_names:
+        close = difflib.get_close_matches(name, names, n=1, cutoff=0.5)
+        hint = f"did you mean '{close[0]}'?" if close else "responses with limits: " + ", ".join(names)
+        raise InputError(f"{where}: {FAILED_LIMIT} '{text}' names no response of the study; {hint}")
+    r = next(r for r in spec.responses if r.name == name)
+    sides = [s for s, v in (("min", r.min), ("max", r.max)) if v is not None]
+    if not sides:
+        raise InputError(f"{where}: {FAILED_LIMIT} '{text}': response '{name}' has no min or max in "
+                         "study.toml; name a limited response or clear the cell")
+    if not side:
+        if len(sides) == 2:
+            raise InputError(f"{where}: {FAILED_LIMIT} '{text}': '{name}' has both a min and a max; write "
+                             f"{name}:min or {name}:max")
+        side = sides[0]
+    if side not in sides:
+        raise InputError(f"{where}: {FAILED_LIMIT} '{text}': '{name}' has no {side} limit; use "
+                         + " or ".join(f"{name}:{s}" for s in sides))
+    return f"{name}:{side}"
 
 
 VIF_MAX = 10.0  # Montgomery, Peck & Vining (2012), Introduction to Linear Regression Analysis, §9.4.2
@@ -382,5 +422,7 @@ def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
     header = ["run", *spec.factor_names, *spec.response_names, "status", "note"]
     if BLOCK in frame.columns and (frame[BLOCK].fillna("").astype(str) != "").any():
         header.insert(-1, BLOCK)   # only when used, so tables without blocks stay as they were
+    if FAILED_LIMIT in frame.columns and (frame[FAILED_LIMIT].fillna("").astype(str) != "").any():
+        header.insert(-1, FAILED_LIMIT)   # only when used, so tables without it stay as they were
     text = format_header(header) + format_rows(frame, header)
     write_atomic(path, text)

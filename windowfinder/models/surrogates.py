@@ -2,11 +2,14 @@
 
 from __future__ import annotations
 
+import copy
+
 import numpy as np
 
 from windowfinder.errors import InputError
 from windowfinder.models.base import _check_xy
 from windowfinder.models.choice import MODELS, fit_response
+from windowfinder.models.censored import fit_censored
 from windowfinder.models.failure import FailureModel
 from windowfinder.models.transform import Transform
 
@@ -44,7 +47,8 @@ class Surrogates:
         return np.ones(X.shape[0]) if self.failure is None else self.failure.predict_proba(X)
 
     @classmethod
-    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0, blocks=None):
+    def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0, blocks=None,
+                   censored=None):
         """Fit one model per response.
 
         Parameters
@@ -62,6 +66,11 @@ class Surrogates:
         blocks : array (n,) or None
             Block label of each run (day, lot, operator); with two or more blocks each GP response model
             carries a random offset per block (:func:`windowfinder.models.blocks.fit_blocked`).
+        censored : dict[str, (bool ndarray (n,), float, str)] or None
+            Per response: the runs whose value is only known to lie ``"above"`` or ``"below"`` a bound
+            (failed runs that broke that limit), the bound and the side; they enter that response's model
+            as censored values (:func:`windowfinder.models.censored.fit_censored`) and should be passed
+            with ``works`` True, since the limit explains them.
         """
         kinds = {name: (kind.get(name, "gp") if isinstance(kind, dict) else kind) for name in Y}
         for k in kinds.values():
@@ -86,6 +95,11 @@ class Surrogates:
                 models[name], choices[name] = fit_response(X[rows], y[rows], kinds[name], t,
                                                            n_restarts=n_restarts, seed=seed,
                                                            blocks=None if blocks is None else blocks[rows])
+                cens = (censored or {}).get(name)
+                if cens is not None and np.asarray(cens[0], bool).any():   # refit the chosen model
+                    mask = np.asarray(cens[0], bool)
+                    models[name] = fit_censored(copy.copy(models[name]), X[rows & ~mask], y[rows & ~mask],
+                                                X[mask], cens[1], cens[2])
             except InputError as err:
                 raise InputError(f"response {name}: {err}") from None
         failure = None
