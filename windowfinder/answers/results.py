@@ -175,7 +175,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
     if not res.found:
         where = ", ".join(f"{k} = {v:.4g}" for k, v in common["best_point"].items())
         msg = (f"no region (with its tolerance band) reaches P >= {confidence:g}; the best found is "
-               f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence")
+               f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence"
+               + _failure_blocks(spec, feas, confidence, res.best_point, seed))
         return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
                              message=msg, **common)
@@ -203,6 +204,29 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                          cautions=cautions(spec, fit, share, mean_only), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
                          volume_share=float(np.prod((hi_n - lo_n) / spec.spans)), **common)
+
+
+def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: int) -> str:
+    """A sentence when P(process works) is what keeps every setting below ``confidence``, else "".
+
+    Checked on the best point and 2048 Sobol points: the limits alone reach ``confidence`` somewhere,
+    the joint probability (times P(works)) nowhere.
+    """
+    if feas.failure_ is None:
+        return ""
+    U = qmc.Sobol(spec.d, scramble=True, seed=seed).random(2048)
+    if best_point is not None:
+        U = np.vstack([np.asarray(best_point, float).reshape(1, -1), U])
+    _, p_each, p_works, joint, _ = feas._chunks(U)
+    limits_only = np.prod(p_each, axis=1)
+    i = int(np.argmax(np.where(limits_only >= confidence, p_works, -1.0)))
+    if limits_only[i] < confidence or joint.max() >= confidence:   # limits, or the band, block it
+        return ""
+    where = ", ".join(f"{k} = {v:.4g}" for k, v in _point(spec, U[i]).items())
+    return (f". The limits alone are met with P = {limits_only[i]:.3f} at {where}, but the failure model "
+            f"gives P(process works) = {p_works[i]:.3f} there: failed runs are what blocks the window. "
+            "Runs that work near there raise it; a failed run that broke a limit can say so in the "
+            "failed_limit column")
 
 
 def _inward(spec: StudySpec, lo, hi):
