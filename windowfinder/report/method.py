@@ -58,7 +58,10 @@ def method_notes(spec, window=None) -> str:
         "ν = 5/2 kernel with one length scale per factor (automatic relevance determination) plus a "
         "white-noise term; factors coded to [0, 1], responses standardised (optionally on a log or "
         "logit scale), hyperparameters by maximum marginal likelihood with several seeded restarts. "
-        "Failed runs feed a Gaussian-process classifier of P(process works).",
+        "Failed runs feed a Gaussian-process classifier of P(process works) (probit, expectation "
+        "propagation; Rasmussen & Williams 2006, ch. 3) whose prior mean is the observed success rate, so "
+        "far from every run P(works) is that rate; failed runs that name the limit they broke enter that "
+        "response's model as censored values instead (Schmee & Hahn 1979).",
         "Model choice: with model = \"auto\" (the default) each response's Gaussian process is compared "
         "with the full quadratic polynomial and a reduced one (hierarchical backward elimination by AICc, "
         "Hurvich & Tsai 1989) by the leave-one-out predictive log density; a polynomial is used only where "
