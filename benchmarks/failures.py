@@ -15,9 +15,10 @@ from __future__ import annotations
 
 import os
 import re
+import sys
 import tempfile
 import time
-from concurrent.futures import ProcessPoolExecutor
+from concurrent.futures import ProcessPoolExecutor, as_completed
 from pathlib import Path
 
 import numpy as np
@@ -99,17 +100,21 @@ def main(quick: bool = False) -> str:
         root = Path(tmp)
         welds = [pool.submit(weld_campaign, s, cfg["weld_budget"], root) for s in cfg["weld_seeds"]]
         reactors = [pool.submit(reactor_cost, n, root) for n in cfg["reactor_runs"]]
-        rrows = [f.result() for f in reactors]
-        for r in rrows:
-            print(f"reactor {r['runs']} runs: volume {r['before']:.3g} -> {r['after']:.3g}, cost "
-                  f"{r['cost']:.0%}, P(works) at the failed run {r['p_works_far']:.3f}", flush=True)
-        wrows = []
-        for f in welds:
-            wrows.append(f.result())
-            w = wrows[-1]
-            print(f"spot weld seed {w['seed']}: found {w['found']} volume {w['volume']:.3g} precision "
-                  f"{w['precision']:.2f} ({w['failed']} failed of {w['runs']}, {w['seconds']:.0f} s)",
-                  flush=True)
+        wrows, rrows = [], []
+        for f in as_completed(welds + reactors):
+            r = f.result()
+            if "seed" in r:
+                wrows.append(r)
+                print(f"spot weld seed {r['seed']}: found {r['found']} volume {r['volume']:.3g} precision "
+                      f"{r['precision']:.2f} ({r['failed']} failed of {r['runs']}, {r['seconds']:.0f} s)",
+                      file=sys.stderr, flush=True)
+            else:
+                rrows.append(r)
+                print(f"reactor {r['runs']} runs: volume {r['before']:.3g} -> {r['after']:.3g}, cost "
+                      f"{r['cost']:.0%}, P(works) at the failed run {r['p_works_far']:.3f}", file=sys.stderr,
+                      flush=True)
+    wrows.sort(key=lambda r: r["seed"])
+    rrows.sort(key=lambda r: r["runs"])
     lines = ["## Failed runs", "",
              "One failed run at the far corner of the reactor (110 degC, 240 min, 3 mol%), added to the demo's "
              "data (space-filling design + 2 centre runs, simulated): window volume share at 95 % before and "
