@@ -125,25 +125,26 @@ def test_bad_options_are_refused():
 
 
 def test_far_corner_failed_run_costs_at_most_30_percent_of_the_reactor_window(tmp_path):
-    # Target of the failure-model issue, on the reactor demo's data (space-filling design of 16 runs +
-    # 2 centre runs, simulated as make demo does): one failed run at the far corner (110 degC, 240 min,
-    # 3 mol%) may cost at most 30 % of the 95 % window's volume. Larger designs: docs/benchmarks.md.
+    # Target of the failure-model issue, on the bundled reactor case: its 12 example runs plus 12
+    # space-filling runs on its simulator (24 completed runs, the demo's budget). One failed run at the far
+    # corner (110 degC, 240 min, 3 mol%) may cost at most 30 % of the 95 % window's volume. Other run
+    # counts: docs/benchmarks.md (section failures).
     import pandas as pd
 
     from windowfinder.answers.results import build_window
-    from windowfinder.demo import simulate_planned
+    from windowfinder.cases.examples import simulate_planned
     from windowfinder.study import Study, create_study
 
     folder = tmp_path / "reactor"
     create_study(folder, example="reactor")
     study = Study.load(folder)
-    study.add_runs(study.design("space-filling", runs=16, centre=2))
-    simulate_planned(Study.load(folder), "reactor", study.spec.seed)
+    study.add_runs(study.design("space-filling", runs=12))
+    simulate_planned(Study.load(folder), "reactor", study.spec.seed + 1)
     study = Study.load(folder)
     before = build_window(study.spec, study.fit())
     study.add_runs(pd.DataFrame([{"run": "FAR", "temperature": 110.0, "time": 240.0, "catalyst": 3.0,
                                   "status": "failed", "note": ""}]))
     study = Study.load(folder)
     after = build_window(study.spec, study.fit())
-    assert before.found and after.found
+    assert before.found and after.found and before.volume_share > 0
     assert after.volume_share >= 0.7 * before.volume_share
