@@ -69,8 +69,6 @@ def _brute_force(x, y, m, c, ls, x_star, nodes=60):
 def test_ep_single_run_is_exact():
     # One run: EP's single site matches the tilted moments exactly, so its evidence is the closed form
     # Z = Phi(y m / sqrt(1 + c)) (Rasmussen & Williams 2006, eq. 3.82 with n = 1).
-    fm = FailureModel(prior_mean=0.4, kernel_params=(2.0, [0.3]))
-    fm.fit(np.array([[0.2], [0.7]]), np.array([True, False]))   # two runs: a boundary exists
     single = FailureModel(prior_mean=0.4, kernel_params=(2.0, [0.3]))
     single.rate_ = 0.5
     lz, _, _ = single._fit_at(np.log([2.0, 0.3]), np.array([[0.2]]), np.array([1.0]))

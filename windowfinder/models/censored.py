@@ -68,7 +68,6 @@ def fit_censored(model, X, y, X_cens, bound, side, iterations=ITERATIONS):
         tr = model.transform_
     else:   # too few measurements to model: start from the limit itself, just beyond it
         tr = None
-    z_bound = None
     values = np.full(k, float(bound))
     for _ in range(iterations + (tr is None)):
         if tr is not None:
