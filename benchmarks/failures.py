@@ -127,7 +127,9 @@ def main(quick: bool = False) -> str:
     found = sum(w["found"] for w in wrows)
     lines += ["", f"Spot weld closed loop ({cfg['weld_budget']} runs, aim window, batches of 2): a 95 % window "
               f"in {found} of {len(wrows)} seeds (target >= 3 of 5). Precision = share of the window that "
-              "truly works and meets every limit (noise-free truth).", "",
+              "truly works and meets every limit (noise-free truth). A volume share of 0: at least one factor's "
+              "range is narrower than one step and collapses to a single step value (weld time moves in 20 ms "
+              "steps).", "",
               "| seed | runs | failed | window | volume share | precision | lowest/best P |",
               "|---|---|---|---|---|---|---|"]
     for w in wrows:
