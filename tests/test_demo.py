@@ -38,3 +38,20 @@ def test_no_ratio_from_a_zero_volume_or_missing_start():
     none = window({"a": (0, 0), "b": (0, 0)}, found=False)
     assert "no window at the start" in ratio_line(none, grown)
     assert "still has none" in ratio_line(none, none)
+
+
+def test_the_measure_the_demo_reads_is_the_exported_ranges_share(tmp_path):
+    """The demo reads ``volume_share`` from window.json; it must be the product over factors of the
+    exported range over the factor's span (recomputed here from the ranges and study.toml)."""
+    import numpy as np
+
+    from windowfinder.answers.results import build_window
+    from windowfinder.study import Study, create_study
+
+    create_study(tmp_path / "t", example="tempering")
+    study = Study.load(tmp_path / "t")
+    win = build_window(study.spec, study.fit()).to_dict()
+    assert win["found"]  # the tempering example's 12 runs give a window (0.025 of the space today)
+    spans = {f.name: f.high - f.low for f in study.spec.factors}
+    expected = np.prod([(f["high"] - f["low"]) / spans[f["name"]] for f in win["factors"]])
+    assert volume(win) == pytest.approx(expected, rel=1e-12, abs=1e-15)
