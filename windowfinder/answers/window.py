@@ -2,29 +2,39 @@
 meeting every limit stays at or above a stated confidence.
 
 Pure geometry and search; the only link to a study is ``prob_fn``, a vectorised callable mapping coded
-points ``(n, d)`` to the joint probability ``(n,)``.
+points ``(n, d)`` to the joint probability ``(n,)``. The checks of a candidate box (guard box,
+adversarial verification, settling a failing box) live in :mod:`windowfinder.answers.verifier`.
 
 Method
 ------
 1. **Candidates.** ``prob_fn`` on a seeded, scrambled Sobol set [1]_ of ``2^min(14, 11 + d)`` points;
    those with ``P < confidence`` are *blockers* (kept: the ``2d + 2`` nearest, max-norm, of some
    feasible candidate). A box must keep every blocker out of its *guard box* (the stated ranges widened
-   by the tolerance, clipped to the unit cube).
+   by the tolerance, clipped to the unit cube; the box itself without tolerance).
 2. **Shape.** Seeds are the feasible candidates with the largest max-norm clearance from the blockers.
    From the largest cube about a seed, every face is pushed out to the nearest blocker in its slab
    (greedy face expansion); then faces are traded: one is pulled in by 1/4 .. 1/100 of its width, the
    others re-expanded, and the change kept when the volume grows. With a set point both faces of a
-   factor move together, so the ranges stay symmetric about it.
-3. **Verification.** ``prob_fn`` at the guard box's corners, face centres, centre and a Sobol set in
-   it; when all pass, an adversarial search for its lowest probability (L-BFGS-B [2]_ bounded to the
-   guard box, central differences in one vectorised call) from the lowest few points seen in the box.
-   Points below the confidence become blockers. A failing box shrinks about its centre (faces on the
-   cube's edge stay) until cubes of a margin around the failing points are outside, the margin
-   doubling per failure; once it passes, all faces and then each face alone are bisected back toward
-   the failed box. The shape step reruns from the verified box with the new blockers (cutting-plane
-   refinement). Finally every verified box is rechecked against all later evaluations (settled again
-   if one fell below the confidence inside it) and the largest is kept; ``min_probability`` is the
-   lowest ``P`` of all evaluations inside its guard box.
+   factor move together, so the ranges stay symmetric about it. (``method="pymoo"`` replaces this step
+   by a genetic algorithm over the box bounds, :mod:`windowfinder.answers.boxevolution`.)
+3. **Verification** (:class:`~windowfinder.answers.verifier.BoxVerifier`): corners, faces, centre, a
+   Sobol set and an adversarial L-BFGS-B search [2]_ over the guard box; points below the confidence
+   become blockers, a failing box is settled, and the shape step reruns from it (cutting-plane
+   refinement). Every verified box is rechecked against all later evaluations.
+4. **Nesting** (``nested=True``). A box verified at ``c'`` is valid at every ``c <= c'``. The search
+   runs at every level of :data:`LADDER` above the requested confidence, highest first, and then at the
+   requested one, and all verified boxes are candidates. Hence the window at a lower confidence is never
+   smaller than the one at any ladder level above it (exactly: the levels above run identically), unless
+   the extra search proves that window wrong (finds a point inside it below the confidence).
+5. **Grid** (``snap``). Each candidate is rounded inward to the factors' step grid; a candidate with a
+   range narrower than one step is dropped (so no window has zero width). The largest rounded candidate
+   that passes a final adversarial verification at the requested confidence is the window; its
+   ``min_probability`` and ``worst_point`` are the lowest ``P`` of all evaluations inside *its* guard
+   box, so the worst point always lies in the guard band reported.
+
+The **volume** of a window is the product of its stated ranges' widths in coded units: the share of the
+studied factor space the box (after rounding to the step grid) covers; the guard band is not counted.
+It is the one figure used by the json, the message, the report and the campaign log.
 
 References
 ----------
@@ -41,10 +51,10 @@ from dataclasses import dataclass, fields
 
 import numpy as np
 import pandas as pd
-from scipy.optimize import minimize
 from scipy.spatial import cKDTree
 from scipy.stats import qmc
 
+from windowfinder.answers.verifier import BoxVerifier, Recorder, distinct, local_search, scale, volume
 from windowfinder.errors import InputError
 
 try:  # installed with scikit-learn; without it the search runs unchanged, only slower under load
@@ -52,17 +62,28 @@ try:  # installed with scikit-learn; without it the search runs unchanged, only 
 except ImportError:  # pragma: no cover
     threadpool_limits = None
 
-_EDGE = 1e-12  # slack of the "inside the box" test
+LADDER = (0.6, 0.7, 0.8, 0.85, 0.9, 0.95, 0.99)
+"""Confidence levels searched above the requested one when ``nested`` (common practice, no source)."""
+
+METHODS = ("faces", "pymoo")
+
+
+def volume_text(v: float) -> str:
+    """The one wording of a window's volume (its share of the studied factor space)."""
+    return f"{100.0 * v:.3g} % of the studied factor space"
 
 
 @dataclass
 class WindowResult:
     """A process window in coded units (arrays of length d; NaN when not found).
 
-    ``lower``..``upper`` are the stated ranges where the set point may be placed; ``guard_lower``..
-    ``guard_upper`` widen them by the tolerance (clipped to [0, 1]) and are what was verified.
-    ``min_probability`` is the lowest joint probability found over the guard box, at ``worst_point``;
-    ``best_probability`` at ``best_point`` the highest found anywhere.
+    ``lower``..``upper`` are the stated ranges where the set point may be placed (rounded inward to the
+    step grid when a ``snap`` was given); ``guard_lower``..``guard_upper`` widen them by the tolerance
+    (clipped to [0, 1]) and are what was verified. ``min_probability`` is the lowest joint probability
+    found over the guard box, at ``worst_point`` (inside it); ``best_probability`` at ``best_point`` the
+    highest found anywhere. ``volume`` is the share of the coded cube the stated ranges cover.
+    ``verified_lower``..``verified_upper``: the verified box before rounding (when not found because every
+    box was narrower than one step: the largest such box).
     """
 
     found: bool
@@ -80,6 +101,8 @@ class WindowResult:
     set_point: np.ndarray | None = None
     tolerance: np.ndarray | None = None
     n_evaluations: int = 0
+    verified_lower: np.ndarray | None = None
+    verified_upper: np.ndarray | None = None
 
     def to_dict(self) -> dict:
         """JSON-safe dict (arrays as lists, NaN as None)."""
@@ -104,90 +127,19 @@ def _plain(v):
     return v.item() if isinstance(v, np.generic) else v
 
 
-class _Recorder:
-    """Wraps ``prob_fn``: checks shapes, reads NaN as 0, keeps every evaluation."""
-
-    def __init__(self, prob_fn):
-        self.prob_fn = prob_fn
-        self._X, self._P = [], []
-        self.count = 0
-
-    def __call__(self, X):
-        X = np.atleast_2d(np.asarray(X, dtype=float))
-        p = np.asarray(self.prob_fn(X), dtype=float).reshape(-1)
-        if p.shape != (len(X),):
-            raise ValueError(f"prob_fn returned {p.shape[0]} values for {len(X)} points")
-        p = np.nan_to_num(p, nan=0.0)
-        self._X.append(X)
-        self._P.append(p)
-        self.count += len(p)
-        return p
-
-    def inside(self, lo=0.0, hi=1.0, since=0):
-        """Evaluations (from the ``since``-th on) inside the box ``lo..hi`` as ``(X, P)``."""
-        if len(self._X) > 1:
-            self._X, self._P = [np.vstack(self._X)], [np.concatenate(self._P)]
-        X, P = self._X[0][since:], self._P[0][since:]
-        mask = np.all((X >= lo - _EDGE) & (X <= hi + _EDGE), axis=1)
-        return X[mask], P[mask]
-
-
-def _local_search(f, starts, lo, hi, sign=1.0, maxiter=30):
-    """Minimise ``sign * f`` from each start by L-BFGS-B inside [lo, hi] (evaluations land in ``f``)."""
-    d = len(lo)
-    eye = np.eye(d) * (1e-6 * np.maximum(hi - lo, 0.0))
-
-    def fun(x):
-        up, down = np.minimum(x + eye, hi), np.maximum(x - eye, lo)
-        p = sign * f(np.vstack([x, up, down]))
-        span = np.diag(up - down)
-        grad = np.where(span > 0, (p[1:d + 1] - p[d + 1:]) / np.where(span > 0, span, 1.0), 0.0)
-        return p[0], grad
-
-    for x0 in starts:
-        minimize(fun, np.clip(x0, lo, hi), jac=True, method="L-BFGS-B", bounds=list(zip(lo, hi)),
-                 options={"maxiter": maxiter})
-
-
-def _scale(m, w, BT, radius, t, cap):
-    """Largest scale ``a`` keeping cubes of ``radius`` around the blockers (columns of ``BT``, (d, n))
-    out of the guard box of ``(m, w)``; negative when the centre's guard box already holds one.
-
-    ``cap``: keep the stated box inside the unit cube (set-point mode); otherwise it is clipped, and
-    ``a`` stops where the clipped box is the whole cube.
-    """
-    a = float(np.min(np.minimum(m, 1.0 - m) / w) if cap else np.max(np.maximum(m, 1.0 - m) / w))
-    if BT.shape[1]:
-        reach = (np.abs(BT[0] - m[0]) - (t[0] + radius)) / w[0]
-        for j in range(1, len(m)):
-            np.maximum(reach, (np.abs(BT[j] - m[j]) - (t[j] + radius)) / w[j], out=reach)
-        a = min(a, float(reach.min()))
-    return a * (1.0 - 1e-9) - 1e-12 if a > 0 else a
-
-
-def _volume(lower, upper):
-    return float(np.prod(np.maximum(upper - lower, 0.0)))
-
-
 class _Search:
-    """State of one window search: blockers (transposed, (d, n)), evaluations, settings.
+    """Box shaping at one confidence: blockers (transposed, (d, n)) and the verifier that adds to them.
 
     Boxes are pairs ``(lower, upper)`` of stated ranges in coded units.
     """
 
-    def __init__(self, rec, d, confidence, t, seed, n_check, n_local, spacing, fixed_centre):
-        self.rec, self.d, self.c, self.t, self.fixed = rec, d, confidence, t, fixed_centre
-        self.n_check, self.n_local, self.spacing = n_check, n_local, spacing
-        self.engine = qmc.Sobol(d, scramble=True, seed=seed + 1)
-        self.corners = ((np.arange(2 ** d)[:, None] >> np.arange(d)) & 1 if d <= 10 else
-                        np.random.default_rng(seed).integers(0, 2, (1024, d)))
-        self.BT = np.zeros((d, 0))
+    def __init__(self, check: BoxVerifier):
+        self.check, self.d, self.t, self.fixed = check, check.d, check.t, check.fixed
+        self.BT = np.zeros((self.d, 0))
+        check.on_fail = self.add_blockers
 
     def add_blockers(self, X):
         self.BT = np.hstack([self.BT, np.asarray(X, dtype=float).reshape(-1, self.d).T])
-
-    def guard(self, lower, upper):
-        return np.clip(lower - self.t, 0.0, 1.0), np.clip(upper + self.t, 0.0, 1.0)
 
     def shape(self, lower, upper):
         """Face expansion, then face trading."""
@@ -195,7 +147,7 @@ class _Search:
 
     def cube(self, centre):
         """The largest cube about ``centre`` whose guard box holds no blocker (None if there is none)."""
-        a = _scale(centre, np.ones(self.d), self.BT, 0.0, self.t, cap=self.fixed)
+        a = scale(centre, np.ones(self.d), self.BT, 0.0, self.t, cap=self.fixed)
         return None if a < 0 else (np.clip(centre - a, 0.0, 1.0), np.clip(centre + a, 0.0, 1.0))
 
     def expand(self, lower, upper, sweeps=2, hold=None):
@@ -223,7 +175,7 @@ class _Search:
     def trade(self, lower, upper):
         """Face trading: pull one face in by a share of its width, re-expand the others, keep the change
         when the volume grows; shares 1/4, 1/10, 1/30, 1/100 in turn."""
-        volume = _volume(lower, upper)
+        vol = volume(lower, upper)
         for share in (0.25, 0.1, 0.03, 0.01):
             improved, rounds = True, 0
             while improved and rounds < 50:
@@ -237,104 +189,9 @@ class _Search:
                     if self.fixed or not top:
                         L[j] += cut / 2.0 if self.fixed else cut
                     L, U = self.expand(*self.expand(L, U, sweeps=1, hold=j), sweeps=1)
-                    if _volume(L, U) > volume * (1.0 + 1e-9):
-                        lower, upper, volume, improved = L, U, _volume(L, U), True
+                    if volume(L, U) > vol * (1.0 + 1e-9):
+                        lower, upper, vol, improved = L, U, volume(L, U), True
         return lower, upper
-
-    def verify(self, lower, upper):
-        """Check a box's guard box; returns every evaluated point in it with ``P < confidence``.
-
-        Corners, face centres, centre and Sobol points first; only when all of them pass, the
-        adversarial local search from the lowest few. New failing points become blockers.
-        """
-        start = self.rec.count
-        lo, hi = self.guard(lower, upper)
-        centre = (lo + hi) / 2.0
-        faces = np.repeat(centre[None, :], 2 * self.d, axis=0)
-        faces[np.arange(self.d), np.arange(self.d)] = lo
-        faces[self.d + np.arange(self.d), np.arange(self.d)] = hi
-        pts = np.vstack([lo + self.corners * (hi - lo), faces, centre,
-                         lo + self.engine.random(self.n_check) * (hi - lo)])
-        if self.rec(pts).min() >= self.c:
-            X_in, P_in = self.rec.inside(lo, hi)  # start from the lowest of everything seen in the box
-            starts = _distinct(X_in[np.argsort(P_in)], self.n_local, 0.1 * np.max(hi - lo))
-            _local_search(self.rec, starts, lo, hi)
-        X_new, P_new = self.rec.inside(lo, hi, since=start)
-        self.add_blockers(X_new[P_new < self.c])
-        return self.failing(lower, upper)
-
-    def failing(self, lower, upper):
-        """Every point evaluated so far in the box's guard box with ``P < confidence``."""
-        X_in, P_in = self.rec.inside(*self.guard(lower, upper))
-        return X_in[P_in < self.c]
-
-    def cut(self, lower, upper, bad, radius):
-        """Shrink the box about its centre until cubes of ``radius`` around the ``bad`` points lie outside
-        its guard box (faces on the cube's edge stay there, see :func:`_centre_half`); None if impossible."""
-        m, half = _centre_half(lower, upper, pin=not self.fixed)
-        share = min(_scale(m, half, bad.T, radius, self.t, cap=False), 1.0)
-        if share < 0:
-            return None
-        return np.clip(m - share * half, 0.0, 1.0), np.clip(m + share * half, 0.0, 1.0)
-
-    def settle(self, lower, upper, max_rounds, n_bisect=4):
-        """Cut ``lower..upper`` until it verifies, then bisect each face toward the box first given.
-
-        After the k-th failure the cut margin is ``spacing * 2^k / 4``, so a failure on the box's face
-        does not creep inward. Returns the verified box or None.
-        """
-        failed = None
-        for k in range(max_rounds):
-            bad = self.verify(lower, upper)
-            if not len(bad):
-                break
-            failed = failed or (lower, upper)
-            box = self.cut(lower, upper, bad, 0.25 * self.spacing * 2.0 ** k)
-            if box is None:
-                return None
-            lower, upper = box
-        else:
-            return None
-        if failed is None:
-            return lower, upper
-        first, box = failed, [lower, upper]
-        for face in [None] * n_bisect + list(range(self.d if self.fixed else 2 * self.d)) * 2:
-            # all faces toward the last failed box, then each face (pair) alone toward the first
-            target = failed if face is None else first
-            trial = [box[0].copy(), box[1].copy()]
-            for k in (0, 1):
-                move = slice(None) if face is None else [face % self.d]
-                if face is None or self.fixed or k == face // self.d:
-                    trial[k][move] = (trial[k][move] + target[k][move]) / 2.0
-            if np.max(np.abs(np.concatenate(trial) - np.concatenate(box))) < 1e-6:
-                continue
-            if not len(self.verify(*trial)):
-                box = trial
-            elif face is None:
-                failed = trial
-        return box[0], box[1]
-
-
-def _centre_half(lower, upper, pin):
-    """Centre and half-widths of a box; with ``pin``, faces on the cube's edge are taken as reaching half
-    the width beyond it, so that shrinking or reshaping about the centre keeps them on the edge."""
-    lower, upper = lower.copy(), upper.copy()
-    if pin:
-        ext = 0.5 * (upper - lower)
-        lower[lower <= 0.0] -= ext[lower <= 0.0]
-        upper[upper >= 1.0] += ext[upper >= 1.0]
-    return (lower + upper) / 2.0, np.maximum(upper - lower, 1e-9) / 2.0
-
-
-def _distinct(X, k, tol):
-    """The first ``k`` rows of ``X`` that are more than ``tol`` apart (max-norm)."""
-    keep = []
-    for x in X:
-        if all(np.max(np.abs(x - y)) > tol for y in keep):
-            keep.append(x)
-            if len(keep) == k:
-                break
-    return keep
 
 
 def _blockers(C, P, c, seeds, d):
@@ -367,39 +224,32 @@ def _seeds(C, P, c, BT, n_starts):
 
 
 def _largest(search, seeds, max_rounds, n_reshape=2):
-    """Shape from each seed; verify boxes largest first, reshaping around the failing points, and keep
-    the largest verified box. A box is skipped when its volume, times the shrink the first verified box
-    needed, cannot beat the best so far."""
+    """Shape from each seed; verify boxes largest first, reshaping around the failing points; every box
+    still valid at the end, largest first. A box is skipped when its volume, times the shrink the first
+    verified box needed, cannot beat the best so far."""
+    check = search.check
     boxes = [search.shape(*b) for b in (search.cube(np.asarray(x, dtype=float)) for x in seeds) if b]
     verified, best_volume, shrink = [], -1.0, 1.0
-    for box in sorted(boxes, key=lambda b: -_volume(*b)):
+    for box in sorted(boxes, key=lambda b: -volume(*b)):
         for attempt in range(n_reshape):
-            volume = _volume(*box)
-            if verified and volume * (shrink if attempt == 0 else 1.0) <= best_volume:
+            vol = volume(*box)
+            if verified and vol * (shrink if attempt == 0 else 1.0) <= best_volume:
                 break
-            passed = search.settle(*box, max_rounds)
+            passed = check.settle(*box, max_rounds)
             if passed is not None:
-                shrink = _volume(*passed) / volume if not verified and volume > 0 else shrink
+                shrink = volume(*passed) / vol if not verified and vol > 0 else shrink
                 verified.append(passed)
-                best_volume = max(best_volume, _volume(*passed))
+                best_volume = max(best_volume, volume(*passed))
             box = search.shape(*(passed if passed is not None else box))
     # later evaluations may have found low points inside an earlier verified box: settle it again
-    valid = [b for b in (_still_valid(search, b, max_rounds) for b in verified) if b is not None]
-    return max(valid, key=lambda b: _volume(*b)) if valid else None
-
-
-def _still_valid(search, box, max_rounds, tries=3):
-    for _ in range(tries):
-        if box is None or not len(search.failing(*box)):
-            return box
-        box = search.settle(*box, max_rounds)
-    return box if box is not None and not len(search.failing(*box)) else None
+    valid = [b for b in (check.still_valid(b, max_rounds) for b in verified) if b is not None]
+    return sorted(valid, key=lambda b: -volume(*b))
 
 
 def _best(rec, C, P, d, k=4):
     """Highest probability: local maximisation (L-BFGS-B) from the best ``k`` points given."""
-    starts = _distinct(C[np.argsort(-P)], k, 1e-3)
-    _local_search(rec, starts, np.zeros(d), np.ones(d), sign=-1.0)
+    starts = distinct(C[np.argsort(-P)], k, 1e-3)
+    local_search(rec, starts, np.zeros(d), np.ones(d), sign=-1.0)
     X, P_all = rec.inside()
     i = int(np.argmax(P_all))
     return X[i], float(P_all[i])
@@ -410,7 +260,8 @@ def _fmt(x):
 
 
 def find_window(prob_fn, d, confidence, tolerance=None, set_point=None, seed=0, n_check=256,
-                n_starts=3, n_local=4, max_rounds=8, n_candidates=None) -> WindowResult:
+                n_starts=3, n_local=4, max_rounds=8, n_candidates=None, nested=False, snap=None,
+                method="faces") -> WindowResult:
     """Largest axis-aligned box of coded settings whose lowest joint probability is >= ``confidence``.
 
     Parameters
@@ -430,65 +281,125 @@ def find_window(prob_fn, d, confidence, tolerance=None, set_point=None, seed=0, 
     n_check, n_starts, n_local, max_rounds, n_candidates : int
         Sobol points per verification (a power of two), seeds, local-search starts per verification,
         failed verifications before a box is given up, candidates (default ``2^min(14, 11 + d)``).
+    nested : bool
+        Also search at every :data:`LADDER` level above ``confidence`` and keep the largest of all
+        (the window never shrinks when the confidence is lowered; see the module notes).
+    snap : callable or None
+        ``snap(lower, upper) -> (lower, upper)``: the box rounded inward to the step grid (coded units), or
+        None when a range is narrower than one step. Candidates are compared after snapping.
+    method : {"faces", "pymoo"}
+        Shape search: greedy face expansion and trading, or a genetic algorithm over the bounds.
 
     Returns
     -------
     WindowResult
-        ``found=False``, with the best probability found and where, when no box reaches the confidence.
+        ``found=False``, with the best probability found and where, when no box reaches the confidence
+        (or every box that does is narrower than one step).
     """
     d = int(d)
     if not 0.0 < confidence < 1.0:
         raise InputError(f"confidence = {confidence}: must lie between 0 and 1 (e.g. 0.95)")
+    if method not in METHODS:
+        raise InputError(f"window search method '{method}': choose one of {', '.join(METHODS)}")
     t = np.zeros(d) if tolerance is None else np.asarray(tolerance, dtype=float).reshape(-1)
     if t.shape != (d,) or np.any(t < 0) or not np.all(np.isfinite(t)):
         raise InputError(f"tolerance {tolerance}: give {d} non-negative half-widths (one per factor)")
     s = None if set_point is None else np.asarray(set_point, dtype=float).reshape(-1)
     if s is not None and (s.shape != (d,) or np.any(s < 0) or np.any(s > 1)):
         raise InputError(f"set point {set_point}: give {d} coded values inside the studied ranges [0, 1]")
+    levels = [c for c in sorted(LADDER, reverse=True) if c > confidence + 1e-9] if nested else []
+    opts = dict(n_check=n_check, n_starts=n_starts, n_local=n_local, max_rounds=max_rounds, method=method)
     # one BLAS thread: the optimiser's tiny matrix steps otherwise wait on thread hand-offs (measured
     # ~6x slower on a busy 2-core machine)
     with threadpool_limits(1, user_api="blas") if threadpool_limits else nullcontext():
-        return _search(prob_fn, d, confidence, t, s, seed, n_check, n_starts, n_local, max_rounds,
-                       n_candidates)
+        return _search(prob_fn, d, levels + [confidence], t, s, seed, n_candidates, snap, opts)
 
 
-def _search(prob_fn, d, confidence, t, s, seed, n_check, n_starts, n_local, max_rounds, n_candidates):
-    rec = _Recorder(prob_fn)
+def _search(prob_fn, d, levels, t, s, seed, n_candidates, snap, opts):
+    rec = Recorder(prob_fn)
     n_cand = n_candidates or 2 ** min(14, 11 + d)
     C = qmc.Sobol(d, scramble=True, seed=seed).random(n_cand)
     P = rec(C)
-    search = _Search(rec, d, confidence, t, seed, n_check, n_local, spacing=n_cand ** (-1.0 / d),
-                     fixed_centre=s is not None)
-    feasible = bool((P >= confidence).any())
+    spacing = n_cand ** (-1.0 / d)
+    make = lambda c: BoxVerifier(rec, d, c, t, seed, opts["n_check"], opts["n_local"], spacing,  # noqa: E731
+                                 s is not None)
+    pool, best = [], []
+    for c in levels:  # highest first: the levels above a requested confidence run the same in every call
+        pool += _level(make(c), rec, C, P, s, seed, opts, best)
+    final = make(levels[-1])
+    box, narrow = _select(final, pool, snap, opts["max_rounds"])
+    return _result(box, narrow, rec, d, levels[-1], t, s)
+
+
+def _level(check, rec, C, P, s, seed, opts, best):
+    """Every box verified at ``check.c`` (``best`` caches the highest probability found, [x, p])."""
+    c, d = check.c, check.d
+    feasible = bool((P >= c).any())
     if s is not None:
-        seeds = [s] if rec(s[None, :])[0] >= confidence else []
+        seeds = [s] if rec(s[None, :])[0] >= c else []
     elif not feasible:
-        x, p = _best(rec, C, P, d)
-        seeds = [x] if p >= confidence else []
-    search.add_blockers(_blockers(C, P, confidence, seeds if s is not None or not feasible else [], d))
+        if not best:
+            best.extend(_best(rec, C, P, d))
+        seeds = [best[0]] if best[1] >= c else []
+    else:
+        seeds = []
+    if opts["method"] == "pymoo":
+        from windowfinder.answers.boxevolution import evolve_box
+
+        if not (seeds or feasible):
+            return []
+        box = evolve_box(check, seed=seed, set_point=s)
+        passed = check.settle(*box, opts["max_rounds"]) if box is not None else None
+        return [passed] if passed is not None else []
+    search = _Search(check)
+    search.add_blockers(_blockers(C, P, c, seeds if s is not None or not feasible else [], d))
     if s is None and feasible:
-        seeds = _seeds(C, P, confidence, search.BT, n_starts)
-    box = _largest(search, seeds, max_rounds) if seeds else None
-    return _result(box, rec, d, confidence, t, s)
+        seeds = _seeds(C, P, c, search.BT, opts["n_starts"])
+    return _largest(search, seeds, opts["max_rounds"]) if seeds else []
 
 
-def _result(box, rec, d, confidence, t, s):
+def _select(final, pool, snap, max_rounds):
+    """The largest pool box, after snapping, that holds at the requested confidence; and the largest box
+    dropped for a range narrower than one step (or None)."""
+    cands, narrow = [], None
+    for box in pool:
+        if len(final.failing(*box)):  # a later search proved it wrong at the requested confidence
+            continue
+        snapped = snap(*box) if snap is not None else box
+        if snapped is None or np.any(snapped[1] - snapped[0] <= 1e-12):
+            narrow = box if narrow is None or volume(*box) > volume(*narrow) else narrow
+            continue
+        cands.append((np.asarray(snapped[0], float), np.asarray(snapped[1], float), box))
+    for lower, upper, box in sorted(cands, key=lambda b: -volume(b[0], b[1])):
+        same = np.array_equal(lower, box[0]) and np.array_equal(upper, box[1])
+        if same or not len(final.verify(lower, upper)):  # rounded boxes get their own final check
+            return (lower, upper, box), None
+    return None, narrow
+
+
+def _result(box, narrow, rec, d, confidence, t, s):
     X, P = rec.inside()
+    nan = np.full(d, np.nan)
     if box is None:
         best_point, best_p = _best(rec, X, P, d)
-        nan = np.full(d, np.nan)
         where = f" around the set point {_fmt(s)}" if s is not None else ""
         band = " with its tolerance band" if np.any(t > 0) else ""
-        msg = (f"no region{where}{band} reaches P >= {confidence:g}; the best found is P = {best_p:.3g} "
-               f"at {_fmt(best_point)} (coded)")
+        if narrow is not None:
+            msg = (f"every region{where}{band} reaching P >= {confidence:g} is narrower than one step of a "
+                   f"factor (the widest is {_fmt(narrow[0])} .. {_fmt(narrow[1])}, coded); refine the "
+                   "factor steps or lower the confidence")
+        else:
+            msg = (f"no region{where}{band} reaches P >= {confidence:g}; the best found is P = "
+                   f"{best_p:.3g} at {_fmt(best_point)} (coded)")
+        vl, vu = (narrow if narrow is not None else (nan.copy(), nan.copy()))
         return WindowResult(False, nan, nan.copy(), nan.copy(), nan.copy(), float("nan"), nan.copy(), 0.0,
-                            confidence, best_p, best_point, msg, s, t, rec.count)
-    lower, upper = box
+                            confidence, best_p, best_point, msg, s, t, rec.count, vl, vu)
+    lower, upper, verified = box
     glo, ghi = np.clip(lower - t, 0.0, 1.0), np.clip(upper + t, 0.0, 1.0)
     X_in, P_in = rec.inside(glo, ghi)
     i, j = int(np.argmin(P_in)), int(np.argmax(P))
-    volume = float(np.prod(upper - lower))
+    vol = volume(lower, upper)
     msg = (f"window found: lowest P = {P_in[i]:.3g} over the guard box (confidence {confidence:g}), "
-           f"coded volume {volume:.3g}")
-    return WindowResult(True, lower, upper, glo, ghi, float(P_in[i]), X_in[i], volume, confidence,
-                        float(P[j]), X[j], msg, s, t, rec.count)
+           f"volume {volume_text(vol)}")
+    return WindowResult(True, lower, upper, glo, ghi, float(P_in[i]), X_in[i], vol, confidence,
+                        float(P[j]), X[j], msg, s, t, rec.count, verified[0], verified[1])
