@@ -143,9 +143,7 @@ def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int 
 
 def build_window(spec: StudySpec, fit, confidence: float | None = None, set_point: dict | None = None,
                  mean_only: bool = False, seed: int | None = None) -> ProcessWindow:
-    """Find the largest window and express it in natural units (see :func:`window.find_window`)."""
-    from windowfinder.answers.window import find_window
-
+    """Find the largest window and express it in natural units (see :func:`search_window`)."""
     confidence = spec.confidence if confidence is None else float(confidence)
     if not 0.0 < confidence < 1.0:
         raise InputError(f"--confidence {confidence:g}: must lie strictly between 0 and 1, e.g. 0.95")
@@ -166,21 +164,19 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
         sp = spec.to_coded([set_point[f] for f in spec.factor_names])[0]
         if ((sp < 0) | (sp > 1)).any():
             raise InputError("--set-point: a value lies outside the factor's low..high in study.toml")
-    res = find_window(feas.joint, spec.d, confidence, tolerance=spec.tolerances_coded, set_point=sp,
-                      seed=seed)
+    res = search_window(spec, feas, confidence, sp, seed)
     diags = [d.to_dict() for d in fit.diagnostics]
     common = dict(confidence=confidence, diagnostics=diags, mean_only=mean_only, safety=spec.has_safety,
                   best_probability=float(res.best_probability) if res.best_probability is not None
                   else None, best_point=_point(spec, res.best_point), set_point=set_point)
     if not res.found:
-        where = ", ".join(f"{k} = {v:.4g}" for k, v in common["best_point"].items())
-        msg = (f"no region (with its tolerance band) reaches P >= {confidence:g}; the best found is "
-               f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence"
+        msg = (_not_found(spec, res, common["best_point"])
                + _failure_blocks(spec, feas, confidence, res.best_point, seed))
         return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
                              message=msg, **common)
-    lo_n, hi_n = _inward(spec, spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0])
+    lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
+    lo_n, hi_n = _inward(spec, lo_n, hi_n) or (lo_n, hi_n)  # already on the grid: clears float noise
     tol = np.array([f.tolerance for f in spec.factors])
     glo_n = np.maximum(lo_n - tol, spec.lows)
     ghi_n = np.minimum(hi_n + tol, spec.lows + spec.spans)
@@ -203,7 +199,48 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                          predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
                          cautions=cautions(spec, fit, share, mean_only), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
-                         volume_share=float(np.prod((hi_n - lo_n) / spec.spans)), **common)
+                         volume_share=float(res.volume), **common)
+
+
+def search_window(spec: StudySpec, feas: Feasibility, confidence: float, set_point=None,
+                  seed: int | None = None):
+    """The coded-unit window search behind every window figure (``window``, report, campaign log).
+
+    Nested over the confidence ladder (never smaller at a lower confidence) and rounded inward to the
+    factor steps, each range at least one step wide (:func:`windowfinder.answers.window.find_window`).
+    """
+    from windowfinder.answers.window import find_window
+
+    def snap(lower, upper):
+        box = _inward(spec, spec.to_natural(lower)[0], spec.to_natural(upper)[0])
+        return None if box is None else (spec.to_coded(box[0])[0], spec.to_coded(box[1])[0])
+
+    return find_window(feas.joint, spec.d, confidence, tolerance=spec.tolerances_coded,
+                       set_point=set_point, seed=spec.seed if seed is None else seed, nested=True,
+                       snap=snap)
+
+
+def _not_found(spec: StudySpec, res, best_point: dict) -> str:
+    if res.verified_lower is not None and np.all(np.isfinite(res.verified_lower)):
+        lo = spec.to_natural(res.verified_lower)[0]
+        hi = spec.to_natural(res.verified_upper)[0]
+        narrow = [f"{f.name} {a:.4g} .. {b:.4g} (step {f.step:g})" for f, a, b in zip(spec.factors, lo, hi)
+                  if f.step and _inward_range(f, a, b) is None]
+        if narrow:
+            return (f"every region reaching P >= {res.confidence:g} is narrower than one step: "
+                    f"{'; '.join(narrow)}; refine the step in study.toml or lower --confidence")
+    where = ", ".join(f"{k} = {v:.4g}" for k, v in best_point.items())
+    return (f"no region (with its tolerance band) reaches P >= {res.confidence:g}; the best found is "
+            f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence")
+
+
+def _inward_range(f, lo: float, hi: float):
+    """``lo..hi`` rounded inward to the factor's step, or None when that leaves less than one step."""
+    if not f.step:
+        return (lo, hi) if hi > lo else None
+    a = float(np.round(np.ceil(lo / f.step - 1e-9) * f.step, 10))
+    b = float(np.round(np.floor(hi / f.step + 1e-9) * f.step, 10))
+    return (a, b) if b - a >= f.step * (1.0 - 1e-9) else None
 
 
 def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: int) -> str:
@@ -230,21 +267,18 @@ def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: 
 
 
 def _inward(spec: StudySpec, lo, hi):
-    """Window ranges rounded inward to each factor's step, so every corner can be set.
+    """Window ranges rounded inward to each factor's step, so every corner can be set; None when a range
+    would be narrower than one step (a window of zero width is no window).
 
     The rounded box lies inside the verified one, so its lowest probability is at least the verified
-    minimum. A range narrower than one step collapses to the step value nearest its middle.
+    minimum (and it is checked again, :func:`windowfinder.answers.window.find_window`).
     """
     lo, hi = np.array(lo, dtype=float), np.array(hi, dtype=float)
     for j, f in enumerate(spec.factors):
-        if not f.step:
-            continue
-        a = np.round(np.ceil(lo[j] / f.step - 1e-9) * f.step, 10)
-        b = np.round(np.floor(hi[j] / f.step + 1e-9) * f.step, 10)
-        if a <= b:
-            lo[j], hi[j] = a, b
-        else:
-            lo[j] = hi[j] = float(np.clip(f.round((lo[j] + hi[j]) / 2), lo[j], hi[j]))
+        r = _inward_range(f, lo[j], hi[j])
+        if r is None:
+            return None
+        lo[j], hi[j] = r
     return lo, hi
 
 

@@ -130,7 +130,8 @@ class Campaign:
         From :func:`make_engine`; default a local pool of ``os.cpu_count()`` workers.
     metrics : mapping of str to callable, optional
         ``name -> fn(study) -> float | None`` shown after each batch (e.g. ``"window volume"``,
-        ``"front hypervolume"``) and kept in the history. A metric that raises is shown as n/a.
+        ``"front hypervolume"``) and kept in the history. A metric that raises is shown as n/a; one that
+        returns ``(value, note)`` also has its note printed on a line of its own.
     progress : callable or None
         Receives one line of text per event; default prints to stderr.
     """
@@ -240,10 +241,14 @@ class Campaign:
                  "runs_done": len(runs.completed()), "failed": len(runs.failed()),
                  "elapsed": time.monotonic() - t0}
         parts = [f"{entry['runs_done']}/{self.budget} runs done ({entry['failed']} failed)"]
+        notes = []
         for name, fn in (self.metrics or {}).items():
             try:
                 value = fn(study)
+                value, note = value if isinstance(value, tuple) else (value, None)
                 value = None if value is None or not math.isfinite(float(value)) else float(value)
+                if note:
+                    notes.append(note)
             except Exception as e:  # a progress figure must not end an expensive campaign
                 if name not in self._warned:
                     self._warned.add(name)
@@ -252,13 +257,16 @@ class Campaign:
             entry[name] = value
             parts.append(f"{name} " + ("n/a" if value is None else f"{value:.4g}"))
         self._say(", ".join(parts))
+        for note in notes:
+            self._say(note)
         return entry
 
 
 class ModelProgress:
     """Default proposer and progress figures sharing one model fit per batch.
 
-    ``window volume`` is the coded volume of the window at the study's confidence, and ``front
+    ``window volume`` is the window's share of the studied factor space at the study's confidence (the
+    figure of ``window`` and window.json's ``volume_share``), and ``front
     hypervolume`` the hypervolume of the measured goal values of the runs that met every limit
     (minimisation form, reference point fixed at the first batch: the nadir of the measured values plus
     10 % of their range). Both are "as of the latest fit", i.e. one batch behind the newest results.
@@ -267,6 +275,7 @@ class ModelProgress:
     def __init__(self):
         self.fit_ = None
         self.ref_ = None
+        self.window_ = None  # (volume, coded guard box, run ids) at the last batch
 
     def propose(self, study: Study, count: int, aim: str) -> pd.DataFrame:
         self.fit_ = study.fit()
@@ -276,15 +285,28 @@ class ModelProgress:
         return {"window volume": self.window_volume, "front hypervolume": self.front_hypervolume}
 
     def window_volume(self, study: Study):
+        """The window's volume (as in ``window`` and the report); with a one-line reason when it shrank
+        since the last batch (:func:`windowfinder.answers.windowchange.shrink_note`)."""
         spec = study.spec
         if self.fit_ is None or not spec.limited:
             return None
-        from windowfinder.answers.results import feasibility_of
-        from windowfinder.answers.window import find_window
+        from windowfinder.answers.results import feasibility_of, search_window
+        from windowfinder.answers.windowchange import shrink_note
 
-        res = find_window(feasibility_of(spec, self.fit_).joint, spec.d, spec.confidence,
-                          tolerance=spec.tolerances_coded, seed=spec.seed)
-        return float(res.volume) if res.found else 0.0
+        feas = feasibility_of(spec, self.fit_)
+        res = search_window(spec, feas, spec.confidence)
+        vol = float(res.volume) if res.found else 0.0
+        done = study.runs.done()
+        note = None
+        if self.window_ is not None:
+            old_vol, old_guard, seen = self.window_
+            latest = done[~done["run"].astype(str).isin(seen)]
+            note = shrink_note(spec, feas, old_vol, old_guard, vol, latest, seed=spec.seed)
+        if res.found:
+            self.window_ = (vol, (res.guard_lower, res.guard_upper), set(done["run"].astype(str)))
+        elif self.window_ is not None:
+            self.window_ = (0.0, self.window_[1], set(done["run"].astype(str)))
+        return (vol, note) if note else vol
 
     def front_hypervolume(self, study: Study):
         from windowfinder.answers.hypervolume import hypervolume

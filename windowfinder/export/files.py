@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
+from windowfinder.answers.window import volume_text
 from windowfinder.inputs.runs import format_table
 from windowfinder.inputs.storage import ensure_folder, write_atomic
 
@@ -72,7 +73,7 @@ def window_table(win) -> str:
         guard = (f"{_g(f['guard_low'])} .. {_g(f['guard_high'])}" if f.get("tolerance") else "-")
         lines.append(f"{f['name']:<16} {_g(f['low']):>10} {_g(f['high']):>10}  {f['unit']:<8} {guard}")
     lines.append(f"lowest P(all limits met) inside: {win.min_probability:.3f} "
-                 f"(confidence {win.confidence:g})")
+                 f"(confidence {win.confidence:g}); volume {volume_text(win.volume_share)}")
     return "\n".join(lines)
 
 
@@ -91,7 +92,8 @@ def window_markdown(win, study_name: str) -> str:
     else:
         basis = "the process mean" if win.mean_only else "each new run (model uncertainty + run-to-run noise)"
         out += [f"Confidence {win.confidence:g}: every setting inside these ranges meets all limits with "
-                f"probability at least **{win.min_probability:.3f}**, for {basis}.", "",
+                f"probability at least **{win.min_probability:.3f}**, for {basis}. The window covers "
+                f"{volume_text(win.volume_share)}.", "",
                 "| factor | low | high | unit | tolerance | guard band |", "|---|---|---|---|---|---|"]
         for f in win.factors:
             out.append(f"| {md(f['name'])} | {_g(f['low'])} | {_g(f['high'])} | {md(f['unit'])} | "

@@ -7,6 +7,7 @@ from dataclasses import dataclass, field, replace
 import numpy as np
 import pandas as pd
 
+from windowfinder.answers.window import volume_text
 from windowfinder.models.diagnostics import COVERAGE_MIN, COVERAGE_MIN_RUNS, Q2_MIN
 from windowfinder.report import tables
 from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
@@ -52,7 +53,8 @@ def summary(c: Content) -> str:
                  else "each new run (model uncertainty and run-to-run scatter)")
         out.append(para(f"Window at confidence {win.confidence:g}: every setting inside these ranges "
                         f"(widened by each factor's tolerance) meets all limits with probability at least "
-                        f"{win.min_probability:.3f}, for {basis}.", "headline"))
+                        f"{win.min_probability:.3f}, for {basis}. The window covers "
+                        f"{volume_text(win.volume_share)}.", "headline"))
         out.append(html_table(tables.window_frame(win), "Process window"))
         if win.worst_point:
             out.append(para("Lowest probability at: " + ", ".join(
