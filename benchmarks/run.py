@@ -16,7 +16,7 @@ import sys
 import time
 from pathlib import Path
 
-SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale", "failures")
+SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale", "failures", "window_search")
 
 
 def main(argv=None) -> int:

@@ -65,8 +65,11 @@ def test_volume_never_grows_with_confidence_and_no_zero_width(cx, cy, r, k, pair
     prob = disc_fn(np.array([cx, cy]), r, k)
     snap = grid_snap(step) if step else None
     high, low = (find_window(prob, 2, c, seed=0, nested=True, snap=snap, n_candidates=2048) for c in pair)
-    # nesting: the window at the lower confidence is never smaller (pair levels are on the ladder)
+    # nesting: the window at the lower confidence is never smaller (pair levels are on the ladder), nor
+    # smaller than the single-level search at that confidence
     assert low.volume >= high.volume - 1e-12
+    single = find_window(prob, 2, pair[1], seed=0, snap=snap, n_candidates=2048)
+    assert low.volume >= single.volume - 1e-12
     for res, c in ((high, pair[0]), (low, pair[1])):
         if res.found:
             width = res.upper - res.lower

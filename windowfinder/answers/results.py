@@ -230,6 +230,10 @@ def _not_found(spec: StudySpec, res, best_point: dict) -> str:
             return (f"every region reaching P >= {res.confidence:g} is narrower than one step: "
                     f"{'; '.join(narrow)}; refine the step in study.toml or lower --confidence")
     where = ", ".join(f"{k} = {v:.4g}" for k, v in best_point.items())
+    if res.best_probability >= res.confidence:
+        return (f"no box (with its tolerance band) reaches P >= {res.confidence:g}: it holds only at and "
+                f"very near {where} (P = {res.best_probability:.3f}); add runs around there or lower "
+                "--confidence")
     return (f"no region (with its tolerance band) reaches P >= {res.confidence:g}; the best found is "
             f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence")
 

@@ -49,6 +49,14 @@ class Recorder:
         self.count += len(p)
         return p
 
+    def copy(self) -> "Recorder":
+        """An independent recorder holding the same evaluations (later calls do not touch this one)."""
+        other = Recorder(self.prob_fn)
+        if self.count:
+            X, P = self.inside()
+            other._X, other._P, other.count = [X.copy()], [P.copy()], self.count
+        return other
+
     def inside(self, lo=0.0, hi=1.0, since=0):
         """Evaluations (from the ``since``-th on) inside the box ``lo..hi`` as ``(X, P)``."""
         if len(self._X) > 1:

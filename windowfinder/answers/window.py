@@ -316,65 +316,74 @@ def find_window(prob_fn, d, confidence, tolerance=None, set_point=None, seed=0, 
 
 
 def _search(prob_fn, d, levels, t, s, seed, n_candidates, snap, opts):
-    rec = Recorder(prob_fn)
+    base = Recorder(prob_fn)
     n_cand = n_candidates or 2 ** min(14, 11 + d)
     C = qmc.Sobol(d, scramble=True, seed=seed).random(n_cand)
-    P = rec(C)
+    P = base(C)
     spacing = n_cand ** (-1.0 / d)
-    make = lambda c: BoxVerifier(rec, d, c, t, seed, opts["n_check"], opts["n_local"], spacing,  # noqa: E731
-                                 s is not None)
+
+    def make(rec, c):
+        return BoxVerifier(rec, d, c, t, seed, opts["n_check"], opts["n_local"], spacing, s is not None)
+
     pool, best = [], []
-    for c in levels:  # highest first: the levels above a requested confidence run the same in every call
-        pool += _level(make(c), rec, C, P, s, seed, opts, best)
-    final = make(levels[-1])
-    box, narrow = _select(final, pool, snap, opts["max_rounds"])
-    return _result(box, narrow, rec, d, levels[-1], t, s)
+    for c in levels:  # each level on its own copy of the candidates: its search is the same in every call
+        rec = base.copy()
+        pool += [(box, rec) for box in _level(make(rec, c), rec, C, P, s, seed, opts, best)]
+    box, narrow, rec = _select(lambda r: make(r, levels[-1]), pool, snap)
+    return _result(box, narrow, rec if rec is not None else base, d, levels[-1], t, s)
 
 
 def _level(check, rec, C, P, s, seed, opts, best):
-    """Every box verified at ``check.c`` (``best`` caches the highest probability found, [x, p])."""
+    """Every box verified at ``check.c``, largest first (``best`` caches the highest P found, [x, p]).
+
+    Face expansion first; when it gives nothing although some setting reaches the confidence, the pymoo
+    genetic algorithm (it finds small boxes that the candidate set's spacing hides)."""
     c, d = check.c, check.d
     feasible = bool((P >= c).any())
     if s is not None:
         seeds = [s] if rec(s[None, :])[0] >= c else []
     elif not feasible:
         if not best:
-            best.extend(_best(rec, C, P, d))
+            best.extend(_best(rec.copy(), C, P, d))
         seeds = [best[0]] if best[1] >= c else []
     else:
         seeds = []
-    if opts["method"] == "pymoo":
+    boxes = []
+    if opts["method"] == "faces":
+        search = _Search(check)
+        search.add_blockers(_blockers(C, P, c, seeds if s is not None or not feasible else [], d))
+        if s is None and feasible:
+            seeds = _seeds(C, P, c, search.BT, opts["n_starts"])
+        boxes = _largest(search, seeds, opts["max_rounds"]) if seeds else []
+    if not boxes and (seeds or feasible):
         from windowfinder.answers.boxevolution import evolve_box
 
-        if not (seeds or feasible):
-            return []
         box = evolve_box(check, seed=seed, set_point=s)
         passed = check.settle(*box, opts["max_rounds"]) if box is not None else None
-        return [passed] if passed is not None else []
-    search = _Search(check)
-    search.add_blockers(_blockers(C, P, c, seeds if s is not None or not feasible else [], d))
-    if s is None and feasible:
-        seeds = _seeds(C, P, c, search.BT, opts["n_starts"])
-    return _largest(search, seeds, opts["max_rounds"]) if seeds else []
+        boxes = [passed] if passed is not None else []
+    return boxes
 
 
-def _select(final, pool, snap, max_rounds):
-    """The largest pool box, after snapping, that holds at the requested confidence; and the largest box
-    dropped for a range narrower than one step (or None)."""
+def _select(make, pool, snap):
+    """The largest pool box, after snapping, that holds at the requested confidence, with the recorder
+    of its check; and the largest box dropped for a range narrower than one step (or None).
+
+    A rounded box is checked again on a fresh copy of its own level's evaluations, so the check depends
+    only on the box, that level and the confidence (and passes at every lower confidence if it passes)."""
     cands, narrow = [], None
-    for box in pool:
-        if len(final.failing(*box)):  # a later search proved it wrong at the requested confidence
-            continue
+    for box, rec in pool:
         snapped = snap(*box) if snap is not None else box
         if snapped is None or np.any(snapped[1] - snapped[0] <= 1e-12):
             narrow = box if narrow is None or volume(*box) > volume(*narrow) else narrow
             continue
-        cands.append((np.asarray(snapped[0], float), np.asarray(snapped[1], float), box))
-    for lower, upper, box in sorted(cands, key=lambda b: -volume(b[0], b[1])):
-        same = np.array_equal(lower, box[0]) and np.array_equal(upper, box[1])
-        if same or not len(final.verify(lower, upper)):  # rounded boxes get their own final check
-            return (lower, upper, box), None
-    return None, narrow
+        cands.append((np.asarray(snapped[0], float), np.asarray(snapped[1], float), box, rec))
+    for lower, upper, box, rec in sorted(cands, key=lambda b: -volume(b[0], b[1])):
+        if np.array_equal(lower, box[0]) and np.array_equal(upper, box[1]):
+            return (lower, upper, box), None, rec   # verified as it stands (at a level >= this one)
+        rec = rec.copy()
+        if not len(make(rec).verify(lower, upper)):
+            return (lower, upper, box), None, rec
+    return None, narrow, None
 
 
 def _result(box, narrow, rec, d, confidence, t, s):
@@ -388,6 +397,9 @@ def _result(box, narrow, rec, d, confidence, t, s):
             msg = (f"every region{where}{band} reaching P >= {confidence:g} is narrower than one step of a "
                    f"factor (the widest is {_fmt(narrow[0])} .. {_fmt(narrow[1])}, coded); refine the "
                    "factor steps or lower the confidence")
+        elif best_p >= confidence:
+            msg = (f"no box{where}{band} reaches P >= {confidence:g}: it holds only at and very near "
+                   f"{_fmt(best_point)} (coded, best P = {best_p:.3g})")
         else:
             msg = (f"no region{where}{band} reaches P >= {confidence:g}; the best found is P = "
                    f"{best_p:.3g} at {_fmt(best_point)} (coded)")
