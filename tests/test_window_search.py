@@ -189,3 +189,24 @@ def test_shrink_line_names_ratio_limit_and_lowest_margin_run(reactor):
     margins = binding.margin(done[binding.name].to_numpy(float))
     assert f"{done['run'].iloc[int(np.argmin(margins))]} (" in line
     assert shrink_note(spec, feas, 0.1, (np.zeros(spec.d), np.ones(spec.d)), 0.2, done) is None
+
+
+def test_refit_against_previous_window_json(reactor, tmp_path):
+    from windowfinder.answers.windowchange import previous_note
+
+    d, study, fit = reactor
+    spec = study.spec
+    win = build_window(spec, fit, 0.8)
+    feas = feasibility_of(spec, fit)
+    old = {"found": True, "confidence": 0.8, "mean_only": False, "set_point": None, "volume_share": 0.5,
+           "factors": [{"name": f.name, "guard_low": f.low, "guard_high": f.high} for f in spec.factors]}
+    path = tmp_path / "window.json"
+    path.write_text(json.dumps(old))
+    line = previous_note(spec, feas, path, win, study.runs.done())
+    # ratio = 0.5 / volume_share (definition of the line)
+    assert line.startswith(f"window shrank {0.5 / win.volume_share:.3g}x (50 % of the studied")
+    assert "lowest-margin run there" in line
+    path.write_text(json.dumps({**old, "confidence": 0.9}))   # another confidence: no comparison
+    assert previous_note(spec, feas, path, win, study.runs.done()) is None
+    path.write_text("{broken")
+    assert previous_note(spec, feas, path, win, study.runs.done()) is None

@@ -147,7 +147,8 @@ def _print_cautions(cautions, safety: bool):
 
 
 def cmd_window(args):
-    from windowfinder.answers.results import build_window
+    from windowfinder.answers.results import build_window, feasibility_of
+    from windowfinder.answers.windowchange import previous_note
     from windowfinder.export.files import window_table, write_window
 
     study = _load(args)
@@ -156,8 +157,12 @@ def cmd_window(args):
     _warn(fit.warnings)
     print("searching for the largest window ...", file=sys.stderr)
     win = build_window(study.spec, fit, args.confidence, set_point=sp, mean_only=args.mean)
+    change = previous_note(study.spec, feasibility_of(study.spec, fit, args.mean),
+                           _out(study, "window.json"), win, study.runs.done())
     paths = write_window(_out(study, ""), win, study.spec.name)
     print(window_table(win))
+    if change:
+        print(f"since the last window: {change}")
     if win.found:
         for p in win.predicted:
             print(f"  {p['response']:<16} predicted {p['low']:.4g} .. {p['high']:.4g} {p['unit']}"

@@ -33,10 +33,11 @@ _EDGE = 1e-12  # slack of the "inside the box" test
 class Recorder:
     """Wraps ``prob_fn``: checks shapes, reads NaN as 0, keeps every evaluation."""
 
-    def __init__(self, prob_fn):
+    def __init__(self, prob_fn, calls=None):
         self.prob_fn = prob_fn
         self._X, self._P = [], []
-        self.count = 0
+        self.count = 0  # evaluations held
+        self.calls = [0] if calls is None else calls  # prob_fn evaluations, shared by copies
 
     def __call__(self, X):
         X = np.atleast_2d(np.asarray(X, dtype=float))
@@ -47,11 +48,12 @@ class Recorder:
         self._X.append(X)
         self._P.append(p)
         self.count += len(p)
+        self.calls[0] += len(p)
         return p
 
     def copy(self) -> "Recorder":
         """An independent recorder holding the same evaluations (later calls do not touch this one)."""
-        other = Recorder(self.prob_fn)
+        other = Recorder(self.prob_fn, self.calls)
         if self.count:
             X, P = self.inside()
             other._X, other._P, other.count = [X.copy()], [P.copy()], self.count

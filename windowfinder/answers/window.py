@@ -405,7 +405,7 @@ def _result(box, narrow, rec, d, confidence, t, s):
                    f"{best_p:.3g} at {_fmt(best_point)} (coded)")
         vl, vu = (narrow if narrow is not None else (nan.copy(), nan.copy()))
         return WindowResult(False, nan, nan.copy(), nan.copy(), nan.copy(), float("nan"), nan.copy(), 0.0,
-                            confidence, best_p, best_point, msg, s, t, rec.count, vl, vu)
+                            confidence, best_p, best_point, msg, s, t, rec.calls[0], vl, vu)
     lower, upper, verified = box
     glo, ghi = np.clip(lower - t, 0.0, 1.0), np.clip(upper + t, 0.0, 1.0)
     X_in, P_in = rec.inside(glo, ghi)
@@ -414,4 +414,4 @@ def _result(box, narrow, rec, d, confidence, t, s):
     msg = (f"window found: lowest P = {P_in[i]:.3g} over the guard box (confidence {confidence:g}), "
            f"volume {volume_text(vol)}")
     return WindowResult(True, lower, upper, glo, ghi, float(P_in[i]), X_in[i], vol, confidence,
-                        float(P[j]), X[j], msg, s, t, rec.count, verified[0], verified[1])
+                        float(P[j]), X[j], msg, s, t, rec.calls[0], verified[0], verified[1])
