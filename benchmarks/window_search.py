@@ -41,34 +41,42 @@ def _quadrant(a=0.3, b=0.45, k=2000.0, c=0.95):
     return prob, 2, (1 - a - e) * (1 - b - e)
 
 
-def _dips(seed, d, dips):
+def dips(seed, d, n_dips):
+    """P = Phi(g), g = 2.5 minus Gaussian dips at random places (a smooth field with holes)."""
     rng = np.random.default_rng(seed)
-    centres, depth = rng.random((dips, d)), rng.uniform(1.5, 4.0, dips)
-    width = rng.uniform(0.08, 0.25, dips) if d == 2 else rng.uniform(0.1, 0.3, dips)
+    centres, depth = rng.random((n_dips, d)), rng.uniform(1.5, 4.0, n_dips)
+    width = rng.uniform(0.08, 0.25, n_dips) if d == 2 else rng.uniform(0.1, 0.3, n_dips)
 
     def prob(X):
         d2 = ((X[:, None, :] - centres[None]) ** 2).sum(axis=2)
         return norm.cdf(2.5 - (depth * np.exp(-d2 / (2 * width ** 2))).sum(axis=1))
-    return prob, d, None
+    return prob
 
 
-def _reactor(seed=5, runs=12):
-    """The bundled reactor case (a demo scenario of our own), tolerances 0, noise-free runs."""
-    from windowfinder.answers.results import feasibility_of
+def simulated_study(directory, runs, seed, zero_tolerance=False):
+    """The bundled reactor case (a demo scenario of our own) in ``directory`` with ``runs`` noise-free
+    space-filling runs; optionally every tolerance set to 0. Returns the loaded Study."""
     from windowfinder.cases import case_dir, load_simulator
     from windowfinder.study import Study
 
-    d = Path(tempfile.mkdtemp(prefix="wf_bench_"))
-    text = re.sub(r"tolerance = [0-9.]+", "tolerance = 0", (case_dir("reactor") / "study.toml").read_text())
-    (d / "study.toml").write_text(text)
-    study = Study.load(d)
+    text = (case_dir("reactor") / "study.toml").read_text()
+    if zero_tolerance:
+        text = re.sub(r"tolerance = [0-9.]+", "tolerance = 0", text)
+    (Path(directory) / "study.toml").write_text(text)
+    study = Study.load(directory)
     study.add_runs(study.design("space-filling", runs=runs, seed=seed))
     truth = load_simulator("reactor").truth(study.runs.X())
     res = pd.DataFrame({"run": study.runs.frame["run"], "status": "done"})
     for r in study.spec.response_names:
         res[r] = truth[r]
     study.record_results(res)
-    study = Study.load(d)
+    return Study.load(directory)
+
+
+def _reactor(seed=5, runs=12):
+    from windowfinder.answers.results import feasibility_of
+
+    study = simulated_study(tempfile.mkdtemp(prefix="wf_bench_"), runs, seed, zero_tolerance=True)
     fit = study.fit()
     _STUDY.update(spec=study.spec, fit=fit)
     return feasibility_of(study.spec, fit).joint, study.spec.d, None
@@ -137,9 +145,9 @@ def _run(prob, d, c, **kw):
 
 
 def main(quick: bool = False) -> str:
-    problems = {"disc (2-D)": _disc(), "quadrant (2-D)": _quadrant(), "dips (2-D)": _dips(0, 2, 3)}
+    problems = {"disc (2-D)": _disc(), "quadrant (2-D)": _quadrant(), "dips (2-D)": (dips(0, 2, 3), 2, None)}
     if not quick:
-        problems["dips (3-D)"] = _dips(10, 3, 4)
+        problems["dips (3-D)"] = (dips(10, 3, 4), 3, None)
         problems["reactor GP, 12 runs (3-D)"] = _reactor()
     rows = []
     for name, (prob, d, truth) in problems.items():

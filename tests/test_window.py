@@ -22,6 +22,7 @@ import pytest
 from scipy.stats import norm, qmc
 
 from windowfinder.errors import InputError
+from benchmarks.window_search import dips as dips_field
 from windowfinder.answers.window import find_window
 
 R, CENTRE, STEEP = 0.35, np.array([0.5, 0.5]), 1000.0
@@ -69,14 +70,7 @@ def test_disc_window_from_a_real_gp_model():
 
 def smooth_prob(seed, d=2, dips=3):
     """P = Phi(g), g = 2.5 minus Gaussian dips at random places (a smooth field with holes)."""
-    rng = np.random.default_rng(seed)
-    centres, depth = rng.random((dips, d)), rng.uniform(1.5, 4.0, dips)
-    width = rng.uniform(0.08, 0.25, dips) if d == 2 else rng.uniform(0.1, 0.3, dips)
-
-    def prob(X):
-        d2 = ((X[:, None, :] - centres[None]) ** 2).sum(axis=2)
-        return norm.cdf(2.5 - (depth * np.exp(-d2 / (2 * width ** 2))).sum(axis=1))
-    return prob
+    return dips_field(seed, d, dips)
 
 
 @pytest.mark.parametrize("seed, d", [(0, 2), (1, 2), (2, 2), (3, 2), (4, 2), (10, 3)])

@@ -22,12 +22,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from scipy.special import expit
 
+from benchmarks.window_search import simulated_study
 from windowfinder.answers import build_window, feasibility_of
 from windowfinder.answers.window import LADDER, find_window, volume_text
 from windowfinder.answers.windowchange import shrink_note
-from windowfinder.cases import case_dir, load_simulator
 from windowfinder.export.files import window_table, write_window
-from windowfinder.study import Study
 
 
 def logistic(m, k):
@@ -140,15 +139,7 @@ def test_worst_point_lies_inside_the_reported_guard_band():
 def reactor(tmp_path_factory):
     """The bundled reactor case with 20 noise-free simulated runs (a demo scenario of our own)."""
     d = tmp_path_factory.mktemp("reactor_search")
-    (d / "study.toml").write_text((case_dir("reactor") / "study.toml").read_text())
-    study = Study.load(d)
-    study.add_runs(study.design("space-filling", runs=20, seed=5))
-    truth = load_simulator("reactor").truth(study.runs.X())
-    res = pd.DataFrame({"run": study.runs.frame["run"], "status": "done"})
-    for r in study.spec.response_names:
-        res[r] = truth[r]
-    study.record_results(res)
-    study = Study.load(d)
+    study = simulated_study(d, 20, 5)
     return d, study, study.fit()
 
 
