@@ -96,8 +96,9 @@ def _make_study(root: Path) -> Study:
     folder.mkdir()
     toml = (case_dir("reactor") / "study.toml").read_text()
     toml = re.sub(r'(?m)^name = "Batch reactor[^"]*"', f'name = "{EVIL}"', toml, count=1)
-    # one failed run in twenty caps P(process works), hence the joint probability, near 0.9
-    toml = re.sub(r"(?m)^confidence = 0\.95", "confidence = 0.8", toml, count=1)
+    # one failed run in twenty caps P(process works), hence the joint probability, near 0.9; at 0.8 the
+    # region that holds is narrower than one temperature step (no window), at 0.7 a window is found
+    toml = re.sub(r"(?m)^confidence = 0\.95", "confidence = 0.7", toml, count=1)
     (folder / "study.toml").write_text(toml)
     study = Study.load(folder)
     sim = load_simulator("reactor")
