@@ -41,7 +41,10 @@ from windowfinder.cases import RunFailed, case_dir, load_simulator
 from windowfinder.answers.hypervolume import hypervolume
 from windowfinder.inputs.spec import StudySpec
 
-GRID = {2: 201, 3: 81}  # grid points per factor for the brute-force truth (coded spacing 1/(n-1))
+from .processes import PROCESSES as _PROCESSES
+from .processes import noisy_run
+
+GRID = {2: 201, 3: 81, 4: 21}  # grid points per factor for the brute-force truth (coded spacing 1/(n-1))
 CONFIDENCE = 0.95  # the confidence every window and front of the benchmark is stated at
 
 
@@ -254,9 +257,18 @@ def analytic_problem(name: str) -> Problem:
 
 SIMULATORS = ("reactor", "spotweld", "tempering")
 ANALYTIC = ("bnh", "srn", "c2dtlz2", "gramacy")
+PROCESSES = tuple(_PROCESSES)   # four-factor simulators of the calibration benchmark
+
+
+def process_problem(name: str) -> Problem:
+    title, spec_fn, truth_fn, noise = _PROCESSES[name]
+    spec = spec_fn()
+    return Problem(name, title, spec, truth_fn, noisy_run(truth_fn, noise, spec.factor_names), noise=noise)
 
 
 def get_problem(name: str) -> Problem:
+    if name in PROCESSES:
+        return process_problem(name)
     return simulator_problem(name) if name in SIMULATORS else analytic_problem(name)
 
 
@@ -300,16 +312,31 @@ def _largest_rectangle(mask, h0, h1) -> float:
 def largest_box_volume(mask) -> float:
     """Volume (coded units) of the largest axis-aligned box whose grid points are all True.
 
-    ``mask`` is a boolean array of shape ``(n,) * d`` (d = 2 or 3) on the grid of :func:`grid`; a box
+    ``mask`` is a boolean array of shape ``(n,) * d`` (d >= 2) on the grid of :func:`grid`; a box
     spans grid points ``i..j`` per factor, i.e. ``(j - i) / (n - 1)`` coded units. Exact on the grid
-    (exhaustive over the slab ranges of the last factor, histogram method for the other two).
+    (exhaustive over the slab ranges of the last factor, down to two factors, where the histogram
+    method takes over).
     """
     mask = np.asarray(mask, bool)
     h = [1.0 / (n - 1) for n in mask.shape]
     if mask.ndim == 2:
         return _largest_rectangle(mask, h[0], h[1])
+    if mask.ndim > 3:  # exhaustive over the last factor's slab ranges, the same problem one factor down
+        best = 0.0
+        n_last = mask.shape[-1]
+        for k1 in range(n_last):
+            slab = mask[..., k1].copy()
+            for k2 in range(k1 + 1, n_last):
+                slab &= mask[..., k2]
+                if not slab.any():
+                    break
+                depth = (k2 - k1) * h[-1]
+                if depth <= best:   # the slab's box has volume at most 1 x depth
+                    continue
+                best = max(best, largest_box_volume(slab) * depth)
+        return best
     if mask.ndim != 3:
-        raise ValueError("largest_box_volume handles 2 or 3 factors")
+        raise ValueError("largest_box_volume handles 2 factors or more")
     n0, n1, n2 = mask.shape
     best = 0.0
     for k1 in range(n2):
