@@ -16,7 +16,8 @@ import sys
 import time
 from pathlib import Path
 
-SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale", "failures", "window_search")
+SECTIONS = ("speed", "sample_efficiency", "window_rules", "noise", "model_choice", "scale", "failures",
+            "window_search", "calibration")
 
 
 def main(argv=None) -> int:

@@ -84,6 +84,7 @@ def test_gp_q2_and_coverage_brute_force(ccd, response):
     q2, rmse, cov = q2_and_coverage(y, mu, sd, stats.norm.ppf(0.975))
     assert diag.loo_q2 == pytest.approx(q2, abs=1e-8)
     assert diag.loo_rmse == pytest.approx(rmse, rel=1e-8)
+    assert diag.loo_rmse_natural == pytest.approx(rmse, rel=1e-8)   # no transform: the same scale
     assert diag.coverage95 == pytest.approx(cov)
     assert diag.n == 13 and diag.model == "gp"
     assert diag.length_scales == pytest.approx(dict(zip(FACTORS, m.length_scales_ * 10.0)))
@@ -105,15 +106,21 @@ def test_quadratic_q2_and_coverage_brute_force(ccd):
     assert q2 < 0.5 and any("explains little" in w for w in diag.warnings)
 
 
-# Transformed response: RMSE of inverse-transformed LOO medians (logit definition; brute-force refits).
-def test_logit_rmse_in_natural_units(ccd):
+# Transformed response: Q^2 and RMSE on the model's (logit) scale, by hand from brute-force refits
+# (Allen 1974 PRESS on z = logit(y / 100)); the natural-unit RMSE of the inverse-transformed LOO medians
+# beside them.
+def test_logit_q2_on_the_model_scale_rmse_in_natural_units(ccd):
     U, d = ccd
     y = d["yield"].to_numpy(float)
     m = GPModel(transform="logit", bounds=(0, 100), n_restarts=2).fit(U, y)
     diag = diagnose(m, y, "yield", FACTORS, SPANS)
     mu, sd = brute_gp_loo(m, U)
+    z = np.log(y / (100 - y))
+    assert diag.loo_q2 == pytest.approx(1 - np.sum((z - mu) ** 2) / np.sum((z - z.mean()) ** 2), abs=1e-8)
+    assert diag.loo_rmse == pytest.approx(np.sqrt(np.mean((z - mu) ** 2)), rel=1e-7)
+    assert diag.scale == "logit"
     median = 100 / (1 + np.exp(-mu))
-    assert diag.loo_rmse == pytest.approx(np.sqrt(np.mean((y - median) ** 2)), rel=1e-7)
+    assert diag.loo_rmse_natural == pytest.approx(np.sqrt(np.mean((y - median) ** 2)), rel=1e-7)
     np.testing.assert_allclose(diag.loo_median, median, rtol=1e-9)
     # noise sd: latent sd times the slope of the inverse transform (central difference) at the mean
     z_bar, h = np.mean(m.z_train_), 1e-5
@@ -166,3 +173,22 @@ def test_results_serialise_and_collect(ccd):
     assert isinstance(diags[0], ModelDiagnostics)
     with pytest.raises(InputError, match="12 measured values"):
         diagnose(s["yield"], d["yield"].to_numpy()[:12], "yield", FACTORS, SPANS)
+
+
+# A log response spanning two decades: Q^2 on the natural scale is dominated by the largest runs, on the
+# model's (log) scale it measures the fit the model was made for. Hand computation of both from the
+# closed-form LOO (Allen 1974 PRESS); the "do not trust" warning follows the model-scale value.
+def test_log_response_judged_on_its_own_scale():
+    rng = np.random.default_rng(3)
+    U = rng.random((20, 2))
+    z = 1.0 + 3.0 * U[:, 0] + 1.5 * U[:, 1] ** 2 + 0.25 * rng.standard_normal(20)
+    y = np.exp(z)
+    m = GPModel(transform="log", n_restarts=2).fit(U, y)
+    diag = diagnose(m, y, "y", ["a", "b"], [1.0, 1.0])
+    mu, _ = m.loo()
+    q2_log = 1 - np.sum((z - mu) ** 2) / np.sum((z - z.mean()) ** 2)
+    q2_nat = 1 - np.sum((y - np.exp(mu)) ** 2) / np.sum((y - y.mean()) ** 2)
+    assert diag.loo_q2 == pytest.approx(q2_log, abs=1e-9) and diag.scale == "log"
+    assert diag.loo_rmse_natural == pytest.approx(np.sqrt(np.mean((y - np.exp(mu)) ** 2)), rel=1e-9)
+    assert (q2_log >= 0.5) == (not any("explains little" in w for w in diag.warnings))
+    assert q2_log > q2_nat   # the natural scale understates this model (what the old check used)

@@ -102,13 +102,15 @@ def format_diagnostics(res, spec) -> str:
     """Plain-text diagnostics table: one line per response."""
     from windowfinder.models.choice import ModelChoice
 
-    lines = [f"{'response':<16} {'model':<9} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>12} {'cover95':>8}  "
-             "length scales (factor units)"]
+    lines = ["Q2 and RMSE on the model's scale (log / logit of a transformed response), RMSE in natural "
+             "units beside",
+             f"{'response':<16} {'model':<9} {'scale':<7} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>9} "
+             f"{'natural RMSE':>16} {'cover95':>8}  length scales (factor units)"]
     for d in res.diagnostics:
         unit = spec.response(d.response).unit
         ls = ", ".join(f"{k}={v:.3g}" for k, v in d.length_scales.items()) or "-"
-        lines.append(f"{d.response:<16} {d.model:<9} {d.n:>3} {d.loo_q2:>7.2f} "
-                     f"{d.loo_rmse:>8.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
+        lines.append(f"{d.response:<16} {d.model:<9} {d.scale:<7} {d.n:>3} {d.loo_q2:>7.2f} "
+                     f"{d.loo_rmse:>9.3g} {d.loo_rmse_natural:>12.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
     for d in res.diagnostics:
         if d.block_offsets:
             lines.append(f"{d.response}: block offsets ({spec.response(d.response).unit}, sd {d.block_sd:.3g}): "

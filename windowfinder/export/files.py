@@ -110,11 +110,14 @@ def window_markdown(win, study_name: str) -> str:
             out += ["", f"Share of the window flagged untrusted (far from runs or too uncertain): "
                         f"{win.untrusted_share:.0%}."]
     if win.diagnostics:
-        out += ["", "## Models", "", "| response | model | runs | LOO Q² | LOO RMSE | 95 % coverage |",
-                "|---|---|---|---|---|---|"]
+        out += ["", "## Models", "", "Q² and the first RMSE on the model's scale (log or logit of a "
+                "transformed response), the second RMSE in the response's units.", "",
+                "| response | model | scale | runs | LOO Q² | LOO RMSE | LOO RMSE, natural units | "
+                "95 % coverage |", "|---|---|---|---|---|---|---|---|"]
         for d in win.diagnostics:
-            out.append(f"| {md(d['response'])} | {d['model']} | {d['n']} | {_g(d['loo_q2'], 3)} | "
-                       f"{_g(d['loo_rmse'], 3)} | {_g(100 * d['coverage95'], 3)} % |")
+            out.append(f"| {md(d['response'])} | {d['model']} | {d.get('scale', 'natural')} | {d['n']} | "
+                       f"{_g(d['loo_q2'], 3)} | {_g(d['loo_rmse'], 3)} | "
+                       f"{_g(d.get('loo_rmse_natural'), 3)} | {_g(100 * d['coverage95'], 3)} % |")
     out += ["", "## Cautions", ""] + [f"- {md(c)}" for c in win.cautions]
     return "\n".join(out) + "\n"
 

@@ -40,13 +40,20 @@ class ModelDiagnostics:
     n : int
         Runs the model was fitted on.
     loo_q2 : float
-        ``1 - PRESS / SS_tot`` with ``PRESS = sum (y_i - yhat_(i))^2`` (Allen 1974, PRESS; Montgomery
-        2013, §10.7). Natural units: for a transformed response ``yhat_(i)`` is the inverse-transformed
-        LOO median. NaN when every measured value is equal.
+        ``1 - PRESS / SS_tot`` with ``PRESS = sum (z_i - zhat_(i))^2`` (Allen 1974, PRESS; Montgomery
+        2013, §10.7) on the model's own scale ``z = g(y)`` (the latent scale of a log or logit response,
+        where the model is fitted and Gaussian; natural units without a transform). On the natural
+        scale a few large values of a log response dominate both sums, and a model that predicts the
+        log well could score near zero there. NaN when every measured value is equal.
     loo_rmse : float
-        ``sqrt(PRESS / n)``, natural units (inverse-transformed LOO medians vs measured values).
+        ``sqrt(PRESS / n)`` on the model's scale (equal to ``loo_rmse_natural`` without a transform).
+    loo_rmse_natural : float
+        The same in natural units: inverse-transformed LOO medians against the measured values.
     coverage95 : float
-        Share of runs whose measured value lies inside its 95% LOO interval (noise included).
+        Share of runs whose measured value lies inside its 95% LOO interval (noise included); the same
+        on either scale, the transform being monotone.
+    scale : str
+        The model's scale: ``"natural"`` (no transform), ``"log"`` or ``"logit"``.
     length_scales : dict[str, float]
         Gaussian-process length scale per factor in factor units (coded length * (high - low));
         empty for the quadratic model.
@@ -70,6 +77,8 @@ class ModelDiagnostics:
     loo_q2: float
     loo_rmse: float
     coverage95: float
+    loo_rmse_natural: float = float("nan")
+    scale: str = "natural"
     length_scales: dict = field(default_factory=dict)
     noise_sd: float = float("nan")
     block_offsets: dict = field(default_factory=dict)
@@ -101,8 +110,8 @@ class ModelDiagnostics:
 
     def to_frame(self):
         """One-row summary table (length scales as ``length_scale:<factor>`` columns)."""
-        row = {k: getattr(self, k) for k in ("response", "model", "n", "loo_q2", "loo_rmse", "coverage95",
-                                              "noise_sd")}
+        row = {k: getattr(self, k) for k in ("response", "model", "n", "scale", "loo_q2", "loo_rmse",
+                                              "loo_rmse_natural", "coverage95", "noise_sd")}
         row.update({f"length_scale:{k}": v for k, v in self.length_scales.items()})
         row["warnings"] = "; ".join(self.warnings)
         return pd.DataFrame([row])
@@ -163,6 +172,20 @@ def _length_scale_checks(model, response, factor_names, factor_spans):
     return scales, notes
 
 
+def _press_q2(v, v_loo):
+    """Q^2 and RMSE of leave-one-out predictions ``v_loo`` of values ``v`` (Allen 1974, PRESS)."""
+    # sums of squares on v / max|v|, so values near 1e-300 (or 1e+300) neither underflow nor overflow
+    unit = float(np.max(np.abs(v))) if v.size else 0.0
+    unit = unit if np.isfinite(unit) and unit > 0 else 1.0
+    resid = (v - v_loo) / unit
+    press = float(resid @ resid)
+    ss_tot = float(np.sum((v / unit - np.mean(v / unit)) ** 2)) if v.size else 0.0
+    # a constant response has no variation to explain: Q^2 is undefined (float noise of a constant
+    # must not pass for variation, hence the relative tolerance)
+    q2 = 1.0 - press / ss_tot if ss_tot > max(v.size, 1) * 1e-24 else float("nan")
+    return q2, unit * math.sqrt(press / max(v.size, 1))
+
+
 def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=(), choice=None):
     """Leave-one-out diagnostics of a fitted :class:`~windowfinder.models.gp.GPModel` or ``QuadraticModel``.
 
@@ -189,7 +212,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     LOO predictions at fixed hyperparameters: Rasmussen & Williams (2006), §5.4.2 for the Gaussian
     process; PRESS residuals from the hat matrix for least squares (Montgomery 2013, §10.7). Intervals
     use the model's own quantile (normal for the GP, Student t with ``n - p - 1`` degrees of freedom for
-    least squares). Warnings: Q^2 below 0.5; with at least 10 runs, 95% coverage below 0.80 (coverage
+    least squares). Q^2 and RMSE are computed on the model's scale (log or logit of the response when
+    it is transformed), the natural-unit RMSE beside them. Warnings: Q^2 below 0.5; with at least 10 runs, 95% coverage below 0.80 (coverage
     cannot exceed 1, so intervals that are too wide do not show in this count); GP length scales or noise
     level at a bound.
     """
@@ -206,16 +230,9 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     if not ok.all():
         notes.append(f"{int((~ok).sum())} run(s) cannot be predicted from the others (each alone fixes a "
                      "model term); they are left out of these checks")
-    # sums of squares on y / max|y|, so responses near 1e-300 (or 1e+300) neither underflow nor overflow
-    unit = float(np.max(np.abs(y[ok]))) if ok.any() else 0.0
-    unit = unit if np.isfinite(unit) and unit > 0 else 1.0
-    resid = (y[ok] - median[ok]) / unit
-    press = float(resid @ resid)
-    ss_tot = float(np.sum((y[ok] / unit - np.mean(y[ok] / unit)) ** 2))
-    # a constant response has no variation to explain: Q^2 is undefined (float noise of a constant
-    # must not pass for variation, hence the relative tolerance)
-    q2 = 1.0 - press / ss_tot if ss_tot > max(int(ok.sum()), 1) * 1e-24 else float("nan")
-    rmse = unit * math.sqrt(press / max(int(ok.sum()), 1))
+    z = np.asarray(model.z_train_, float)
+    q2, rmse = _press_q2(z[ok], np.asarray(mu, float)[ok])       # the model's scale
+    rmse_natural = _press_q2(y[ok], median[ok])[1]
     if not np.isfinite(q2):
         notes.append("leave-one-out Q^2 cannot be computed: the measured values do not vary (or too few "
                      "runs can be predicted); the model's accuracy is unchecked")
@@ -241,6 +258,7 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     block_sd = float(model.block_sd_ * slope) if offsets else float("nan")
     return ModelDiagnostics(
         response=response_name, model=model.kind, n=n, loo_q2=q2, loo_rmse=rmse, coverage95=coverage,
+        loo_rmse_natural=rmse_natural, scale="natural" if tr.kind == "none" else tr.kind,
         length_scales=scales, noise_sd=noise_sd, block_offsets=offsets, block_sd=block_sd,
         warnings=notes, measured=y.tolist(),
         loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist(),

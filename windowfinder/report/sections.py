@@ -131,12 +131,18 @@ def verdict(diag) -> tuple[str, bool]:
 def models(c: Content) -> str:
     spec = c.spec
     out = [para("Each run is predicted from all the others (closed-form leave-one-out at fixed "
-                "hyperparameters). Q² is the share of the variation predicted for unseen runs; coverage "
-                "is the share of runs inside their 95 % interval.")]
+                "hyperparameters). Q² is the share of the variation predicted for unseen runs, on the "
+                "model's own scale (the log or logit of a transformed response); the RMSE is given on that "
+                "scale and in the response's units; coverage is the share of runs inside their 95 % "
+                "interval.")]
     for d in c.fit.diagnostics:
         r = spec.response(d.response)
-        row = {"model": d.model, "runs": d.n, "LOO Q²": d.loo_q2, f"LOO RMSE ({r.unit})": d.loo_rmse,
-               "95 % coverage": d.coverage95, f"noise sd ({r.unit})": d.noise_sd}
+        shown = "" if d.scale == "natural" else f" on the {d.scale} scale"
+        row = {"model": d.model, "runs": d.n, f"LOO Q²{shown}": d.loo_q2}
+        if d.scale != "natural":
+            row[f"LOO RMSE{shown}"] = d.loo_rmse
+        row.update({f"LOO RMSE ({r.unit})": d.loo_rmse_natural, "95 % coverage": d.coverage95,
+                    f"noise sd ({r.unit})": d.noise_sd})
         row.update({f"length scale {k} ({spec.factor(k).unit})": v for k, v in d.length_scales.items()})
         text, bad = verdict(d)
         out.append(f"<h3>{esc(r.name)}{' (safety)' if r.is_safety else ''}</h3>")
