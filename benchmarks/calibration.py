@@ -1,7 +1,8 @@
 """Calibration and window recall: are the models' probabilities what they claim, and how large is the window?
 
-For each problem and seed a space-filling design is run (noisy runs from the problem's simulator),
-windowfinder fits its default models (:meth:`Surrogates.fit_arrays`) and states
+For each problem and seed a design is run (noisy runs from the problem's simulator): a space-filling
+one-shot design, or a study that grows (12 space-filling runs, then runs suggested for the window by
+:func:`windowfinder.nextruns.suggest`); windowfinder fits its default models (:meth:`Surrogates.fit_arrays`) and states
 
 * at Sobol points over the whole domain, the probability that a new run meets every limit (and each
   limit alone): compared with the true probability (the noise-free truth plus the simulator's own
@@ -30,16 +31,23 @@ from scipy.stats import norm, qmc
 
 from windowfinder.answers.feasibility import Feasibility
 from windowfinder.answers.window import find_window
+from windowfinder.inputs.designs import make_design
+from windowfinder.nextruns import suggest
 
 from . import strategies as st
 from .noise import true_latent_sd
 from .problems import CONFIDENCE, GRID, box_precision, eroded, get_problem, grid, largest_box_volume
 from .sample_efficiency import WORKERS, _fmt, _one_thread, _table, say
 
-# problem -> runs; 3-factor problems at 30 runs, 4-factor ones at 40 (the targets' budgets)
-FULL = {"problems": {"reactor": 30, "spotweld": 30, "coating": 40, "bonding": 40},
+# (problem, design, runs): 3-factor problems at 30 runs, 4-factor ones at 40 (the targets' budgets),
+# and the 4-factor ones also as a study grows: 12 space-filling runs then 18 suggested for the window
+FULL = {"cases": (("reactor", "space-filling", 30), ("spotweld", "space-filling", 30),
+                  ("coating", "space-filling", 40), ("bonding", "space-filling", 40),
+                  ("coating", "sequential", 30), ("bonding", "sequential", 30)),
         "seeds": (1, 2, 3, 4, 5), "n_domain": 2048}
-QUICK = {"problems": {"spotweld": 30, "coating": 40}, "seeds": (1,), "n_domain": 512}
+QUICK = {"cases": (("spotweld", "space-filling", 30), ("coating", "space-filling", 40)),
+         "seeds": (1,), "n_domain": 512}
+INITIAL, BATCH = 12, 6   # the sequential design: initial Latin hypercube, runs per suggest call
 RECALL_TARGET = {3: 0.5, 4: 0.3}
 PRECISION_TARGET, HONEST_SHARE, BIN_TOLERANCE = 0.95, 0.90, 0.1
 BINS = np.array([0.0, 0.05, 0.2, 0.35, 0.5, 0.65, 0.8, 0.9, 0.95, 1.0 + 1e-12])
@@ -81,14 +89,35 @@ def _bin_sums(claim, true) -> np.ndarray:
                       np.bincount(k, true, nb)[:nb]])
 
 
-def task(name: str, seed: int, runs: int, n_domain: int) -> dict:
-    """One problem and seed: fit, calibration sums, window recall and precision, noise ratios."""
+def sequential_design(problem, seed: int, runs: int):
+    """``INITIAL`` space-filling runs, then batches of ``BATCH`` from :func:`windowfinder.nextruns.suggest`
+    (aim window, windowfinder's defaults) until ``runs``: coded settings, responses, works flags."""
+    seeds = st.run_seeds(seed, "sequential", runs)
+    X = make_design("space-filling", problem.d, runs=INITIAL, seed=seed)
+    Y, works = problem.run(X, seeds[:INITIAL])
+    while len(X) < runs:
+        q = min(BATCH, runs - len(X))
+        sur = st.fit(problem, X, Y, works, seed=seed)
+        X_new = suggest(sur, problem.limits, problem.goals, X, q, aim="window", confidence=CONFIDENCE,
+                           seed=seed + len(X), tolerance=problem.spec.tolerances_coded).X
+        Y_new, w_new = problem.run(X_new, seeds[len(X):len(X) + q])
+        X = np.vstack([X, X_new])
+        Y = {r: np.concatenate([Y[r], Y_new[r]]) for r in Y}
+        works = np.concatenate([works, w_new])
+    return X, Y, works
+
+
+def task(name: str, design: str, runs: int, seed: int, n_domain: int) -> dict:
+    """One case and seed: fit, calibration sums, window recall and precision, noise ratios."""
     t0 = time.perf_counter()
     problem = get_problem(name)
-    X = st.one_shot_design("space-filling", problem.d, runs, seed)
-    Y, works = problem.run(X, st.run_seeds(seed, f"space-filling-{runs}", runs))
+    if design == "sequential":
+        X, Y, works = sequential_design(problem, seed, runs)
+    else:
+        X = st.one_shot_design("space-filling", problem.d, runs, seed)
+        Y, works = problem.run(X, st.run_seeds(seed, f"space-filling-{runs}", runs))
     sur = st.fit(problem, X, Y, works, seed=seed)
-    out = {"problem": name, "seed": seed, "runs": runs, "found": False, "volume": 0.0,
+    out = {"problem": name, "design": design, "seed": seed, "runs": runs, "found": False, "volume": 0.0,
            "run_precision": np.nan}
     feas = Feasibility(problem.limits, sur, X)
     U = qmc.Sobol(problem.d, scramble=True, seed=1000 + seed).random(n_domain)
@@ -127,11 +156,19 @@ def calibration_rows(sums: np.ndarray) -> tuple[list, bool]:
     return rows, ok
 
 
+def _case_calibration(label: str, sums: np.ndarray) -> list:
+    cells = []
+    for count, claim, true in sums.T:
+        cells.append(f"{true / count:.2f} ({int(count)})" if count >= 20 else "–")
+    return [label] + cells
+
+
 def run_all(cfg) -> pd.DataFrame:
-    jobs = [(name, seed, runs, cfg["n_domain"]) for name, runs in cfg["problems"].items()
-            for seed in cfg["seeds"]]
+    jobs = [(*case, seed, cfg["n_domain"]) for case in cfg["cases"] for seed in cfg["seeds"]]
+    jobs.sort(key=lambda j: j[1] != "sequential")   # the long ones first
+    names = sorted({c[0] for c in cfg["cases"]})
     with ProcessPoolExecutor(max_workers=WORKERS, initializer=_one_thread) as pool:
-        refs = dict(zip(cfg["problems"], pool.map(perfect_window, list(cfg["problems"]))))
+        refs = dict(zip(names, pool.map(perfect_window, names)))
         df = pd.DataFrame(list(pool.map(task, *zip(*jobs))))
     df["perfect"] = df.problem.map(refs)
     df["recall"] = df.volume / df.perfect
@@ -143,16 +180,17 @@ def main(quick: bool = False) -> str:
     t0 = time.perf_counter()
     df = run_all(cfg)
     minutes = (time.perf_counter() - t0) / 60
-    recall_rows = []
-    for name, g in df.groupby("problem", sort=False):
+    recall_rows, by_case = [], []
+    for (name, design), g in df.groupby(["problem", "design"], sort=False):
         p = get_problem(name)
+        by_case.append(_case_calibration(f"{name}, {design}", sum(g.joint_bins)))
         found = g[g.found.astype(bool)]
         target = RECALL_TARGET.get(p.d, 0.5)
         med = float(g.recall.median())
         ratios = ", ".join(f"{c.split(':', 1)[1]} {_fmt(float(g[c].median()))}"
                            for c in g.columns if c.startswith("noise:") and g[c].notna().any())
         honest = int((found.run_precision >= PRECISION_TARGET).sum())
-        recall_rows.append([name, p.d, int(g.runs.iloc[0]), f"{g.perfect.iloc[0]:.4f}",
+        recall_rows.append([name, design, p.d, int(g.runs.iloc[0]), f"{g.perfect.iloc[0]:.4f}",
                             f"{len(found)} of {len(g)}", _fmt(med),
                             f">= {target}: {'met' if med >= target else 'missed'}",
                             f"{honest} of {len(found)}", _fmt(float(g.claim_where_true.mean())),
@@ -165,14 +203,15 @@ def main(quick: bool = False) -> str:
     parts = [
         "## Calibration and window recall against the perfect-model window",
         "",
-        f"Space-filling one-shot designs ({len(cfg['seeds'])} seeds per problem), windowfinder's GP models; "
+        f"Space-filling one-shot designs, and studies that grow ({INITIAL} space-filling runs, then batches of "
+        f"{BATCH} suggested with aim window), {len(cfg['seeds'])} seeds per case; windowfinder's GP models; "
         f"claims at {cfg['n_domain']} Sobol points over the domain per seed against the true probability "
         "that a new run meets every limit (truth + the simulator's own noise); the 95 % window against the "
         "perfect-model window (largest box, guard box included, where that true probability is >= 0.95; "
         f"grid of {GRID[3]} levels per factor in 3-D, {GRID[4]} in 4-D). {minutes:.1f} min wall clock on "
         f"{WORKERS} worker processes.",
         "",
-        _table(["problem", "factors", "runs", "perfect window", "windows found", "median recall",
+        _table(["problem", "design", "factors", "runs", "perfect window", "windows found", "median recall",
                 "target", "run-level precision >= 0.95", "mean claim where true P >= 0.95",
                 "fitted / true noise sd (median)"], recall_rows),
         "",
@@ -188,6 +227,12 @@ def main(quick: bool = False) -> str:
         f"({'all bins met' if limit_ok else 'some bins missed'}):",
         "",
         _table(head, limit_rows),
+        "",
+        "Joint probability by case: mean true P in each claimed-P bin (points in brackets; bins with "
+        "fewer than 20 points left out):",
+        "",
+        _table(["case"] + [f"{BINS[b]:.2f}-{min(BINS[b + 1], 1.0):.2f}" for b in range(len(BINS) - 1)],
+               by_case),
     ]
     text = "\n".join(parts) + "\n"
     say(text)
