@@ -122,6 +122,28 @@ def test_largest_box_in_a_ball_is_the_inscribed_cube():
     assert 2 * r / np.sqrt(3) - 2 * h <= side <= 2 * r / np.sqrt(3)
 
 
+def test_largest_box_in_a_four_ball_is_the_inscribed_hypercube():
+    # geometry: in a d-ball of radius r the largest axis-aligned box is the cube of side 2 r / sqrt(d)
+    r, n = 0.45, 21
+    h = 1.0 / (n - 1)
+    side = largest_box_volume(_disc(n, r, d=4)) ** (1 / 4)
+    assert 2 * r / np.sqrt(4) - 2 * h <= side <= 2 * r / np.sqrt(4)
+
+
+def test_largest_box_in_four_factors_against_enumeration():
+    # brute force: every box of a random 5^4 mask enumerated (all corner pairs per factor)
+    import itertools
+
+    rng = np.random.default_rng(4)
+    mask = rng.random((5,) * 4) < 0.8
+    best = 0.0
+    ranges = [(i, j) for i in range(5) for j in range(i + 1, 5)]
+    for box in itertools.product(ranges, repeat=4):
+        if mask[tuple(slice(i, j + 1) for i, j in box)].all():
+            best = max(best, float(np.prod([(j - i) / 4 for i, j in box])))
+    assert best > 0 and largest_box_volume(mask) == pytest.approx(best)
+
+
 def test_largest_box_of_an_l_shape():
     # brute force by hand: an L made of a 0.6 x 0.2 bar and a 0.2 x 0.8 bar (grid 11 x 11, h = 0.1);
     # the largest all-feasible rectangle is the long bar, 0.2 x 0.8 (corner points 3 x 9)
