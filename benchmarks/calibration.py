@@ -27,7 +27,7 @@ from concurrent.futures import ProcessPoolExecutor
 
 import numpy as np
 import pandas as pd
-from scipy.stats import norm, qmc
+from scipy.stats import qmc
 
 from windowfinder.answers.feasibility import Feasibility
 from windowfinder.answers.window import find_window
@@ -51,24 +51,6 @@ INITIAL, BATCH = 12, 6   # the sequential design: initial Latin hypercube, runs 
 RECALL_TARGET = {3: 0.5, 4: 0.3}
 PRECISION_TARGET, HONEST_SHARE, BIN_TOLERANCE = 0.95, 0.90, 0.1
 BINS = np.array([0.0, 0.05, 0.2, 0.35, 0.5, 0.65, 0.8, 0.9, 0.95, 1.0 + 1e-12])
-
-
-def limit_truth(problem, U) -> np.ndarray:
-    """True probability that a new run meets each limit alone, (n, r) — the factors of
-    :meth:`Problem.run_probability` (which multiplies them, the noise being independent per response);
-    NaN where the process fails (the models' per-limit claims are for a run that works)."""
-    t = problem.truth(U)
-    cols = []
-    with np.errstate(divide="ignore", invalid="ignore"):
-        for name, lo, hi in problem.limits:
-            n, y = problem.noise[name], np.asarray(t[name], float)
-            if n.kind == "relative":
-                y = np.log(y)
-                lo, hi = (None if v is None else np.log(v) for v in (lo, hi))
-            below = norm.cdf((hi - y) / n.sd) if hi is not None else 1.0
-            above = norm.cdf((lo - y) / n.sd) if lo is not None else 0.0
-            cols.append(below - above)
-    return np.column_stack(cols)
 
 
 @functools.lru_cache(maxsize=None)
@@ -122,10 +104,10 @@ def task(name: str, design: str, runs: int, seed: int, n_domain: int) -> dict:
     feas = Feasibility(problem.limits, sur, X)
     U = qmc.Sobol(problem.d, scramble=True, seed=1000 + seed).random(n_domain)
     p_each, p_joint = feas.probabilities(U)
-    t_each = limit_truth(problem, U)
+    t_each, works = problem.limit_probabilities(U)   # per limit: for a run that works
     t_joint = problem.run_probability(U)
     out["joint_bins"] = _bin_sums(p_joint, t_joint)
-    works = np.asarray(problem.truth(U)["works"], bool)
+    works = works > 0
     out["limit_bins"] = sum(_bin_sums(p_each[works, k], t_each[works, k]) for k in range(p_each.shape[1]))
     sure = t_joint >= CONFIDENCE
     out["claim_where_true"] = float(p_joint[sure].mean()) if sure.any() else np.nan

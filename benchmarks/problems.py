@@ -122,8 +122,15 @@ class Problem:
         """
         if self.noise is None:
             return self.feasible(U).astype(float)
+        each, works = self.limit_probabilities(U)
+        return works * np.prod(np.nan_to_num(each, nan=0.0), axis=1)
+
+    def limit_probabilities(self, U) -> tuple[np.ndarray, np.ndarray]:
+        """True probability that a new run meets each limit alone, (n, r) (NaN where the process fails),
+        and ``works`` as floats (n,); the factors of :meth:`run_probability` (noisy problems only)."""
         t = self.truth(U)
-        p = np.asarray(t["works"], float)
+        works = np.asarray(t["works"], float)
+        cols = []
         with np.errstate(divide="ignore", invalid="ignore"):
             for name, lo, hi in self.limits:
                 n, y = self.noise[name], np.where(t["works"], t[name], np.nan)
@@ -132,8 +139,8 @@ class Problem:
                     lo, hi = (None if v is None else np.log(v) for v in (lo, hi))
                 below = norm.cdf((hi - y) / n.sd) if hi is not None else 1.0
                 above = norm.cdf((lo - y) / n.sd) if lo is not None else 0.0
-                p = p * np.nan_to_num(below - above, nan=0.0)
-        return p
+                cols.append(np.broadcast_to(below - above, works.shape))
+        return np.column_stack(cols), works
 
     def objectives(self, values: dict) -> np.ndarray:
         """Goals in minimisation form (maximize -> -y, minimize -> y, target -> |y - t|), (n, m)."""
