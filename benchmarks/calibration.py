@@ -185,8 +185,10 @@ def main(quick: bool = False) -> str:
     parts = [
         "## Calibration and window recall against the perfect-model window",
         "",
-        f"Space-filling one-shot designs, and studies that grow ({INITIAL} space-filling runs, then batches of "
-        f"{BATCH} suggested with aim window), {len(cfg['seeds'])} seeds per case; windowfinder's GP models; "
+        "Space-filling one-shot designs"
+        + (f", and studies that grow ({INITIAL} space-filling runs, then batches of {BATCH} suggested with "
+           "aim window)" if any(c[1] == "sequential" for c in cfg["cases"]) else "")
+        + f", {len(cfg['seeds'])} seeds per case; windowfinder's GP models; "
         f"claims at {cfg['n_domain']} Sobol points over the domain per seed against the true probability "
         "that a new run meets every limit (truth + the simulator's own noise); the 95 % window against the "
         "perfect-model window (largest box, guard box included, where that true probability is >= 0.95; "
