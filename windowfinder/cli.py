@@ -62,6 +62,8 @@ def cmd_check(args):
     for r in spec.responses:
         tag = " (safety)" if r.is_safety else ""
         print(f"response {r.name}: goal {r.goal}, limit {r.limit_text()}{tag}")
+    for c in spec.constraints:
+        print(f"constraint {c.name}: {c.text()}")
     print(f"runs: {len(runs)} in {runs.path.name if runs.path else 'runs.csv'} — "
           + ", ".join(f"{k} {st.get(k, 0)}" for k in ("done", "failed", "planned")))
     print("ok: study file and run table are valid")
@@ -75,6 +77,8 @@ def cmd_design(args):
 
     path = write_csv(_out(study, "design.csv"), frame)
     study.add_runs(frame)
+    for note in frame.attrs.get("notes", []):
+        print(f"note: {note}")
     print(f"{len(frame)} planned runs ({args.method}) appended to {study.runs_path}; copy in {path}")
     shown = ["run", *study.spec.factor_names, *(["block"] if "block" in frame else [])]
     print(frame[shown].to_string(index=False))
@@ -304,6 +308,16 @@ def cmd_verify(args):
     print(f"written: {path}; {len(ver.results)} runs appended to {study.runs_path}")
 
 
+def cmd_record(args):
+    study = _load(args)
+    rec = study.record_file(args.file, replace=args.replace)
+    _warn(study.runs.warnings)
+    print(f"recorded {rec.values} values for {len(rec.runs)} runs ({rec.failed} failed) in "
+          f"{study.runs_path}")
+    left = len(study.runs.planned())
+    print(f"{left} runs still planned" + ("" if left else f"; next: 'windowfinder fit {args.study_dir}'"))
+
+
 # -- parser ----------------------------------------------------------------------------------------
 def build_parser() -> argparse.ArgumentParser:
     from windowfinder.inputs.designs import METHODS
@@ -368,6 +382,11 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s = verb("verify", cmd_verify, "judge a filled-in test plan and append its runs to runs.csv")
     s.add_argument("file", metavar="FILE", help="the filled-in testplan.csv")
+    s = verb("record", cmd_record, "merge measured results into their planned runs in runs.csv, by run id")
+    s.add_argument("file", metavar="FILE", help="CSV with a run column and measured response columns "
+                   "(optional status: done or failed, note)")
+    s.add_argument("--replace", action="store_true",
+                   help="allow overwriting a value or status already recorded in runs.csv")
     return p
 
 

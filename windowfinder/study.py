@@ -155,8 +155,15 @@ class Study:
                 block_of = spread_over_blocks(U, blocks, seed=seed)
             else:   # extra centre runs go to the blocks in turn
                 block_of = np.concatenate([block_of, np.arange(centre) % blocks])
-        if method == "ccd-circumscribed":  # axial runs beyond the bounds on purpose: keep them exact
-            X = self.spec.to_natural(U)
+        notes: list[str] = []
+        if self.spec.constraints:
+            X = self._constrained(method, U, centre, seed, notes)
+            if blocks is not None:   # the constrained design replaces the layout above: deal it again
+                from windowfinder.inputs.slices import spread_over_blocks
+
+                block_of = spread_over_blocks(self.spec.to_coded(X), blocks, seed=seed)
+        elif method == "ccd-circumscribed":  # axial runs beyond the bounds on purpose: not clipped
+            X = self._on_steps(self.spec.to_natural(U))
         elif method == "space-filling":
             X = self._snap_in_strata(U, len(U) - centre)
         else:
@@ -173,14 +180,71 @@ class Study:
             frame[r] = np.nan
         frame["status"] = "planned"
         frame["note"] = f"design {method}"
+        frame.attrs["notes"] = notes
         return frame
+
+    def _on_steps(self, X: np.ndarray) -> np.ndarray:
+        """Round to each factor's step without clipping to the bounds (circumscribed axial runs)."""
+        X = X.copy()
+        for j, f in enumerate(self.spec.factors):
+            if f.step:
+                X[:, j] = np.round(np.round(X[:, j] / f.step) * f.step, 10)
+        return X
+
+    def _constrained(self, method: str, U: np.ndarray, centre: int, seed: int, notes: list) -> np.ndarray:
+        """A design that meets every constraint between factors, on the step grid.
+
+        Space-filling and Sobol designs: the most space-filling subset (Kennard & Stone 1969, see
+        :func:`designs.maximin_subset`) of a large Sobol set rounded to the steps and cut to the allowed
+        region. Classical designs: the points that break a constraint are dropped (named in ``notes``).
+        Centre runs that break one move to the allowed grid setting nearest the centre.
+        """
+        spec, lin = self.spec, self.spec.linear
+        n = len(U) - centre
+        pool = designs.sobol(spec.d, max(4096, 64 * n), seed)
+        pool = np.unique(spec.round_to_step(spec.to_natural(pool)), axis=0)
+        pool = pool[spec.allowed(pool)]
+        if not len(pool):
+            raise InputError(f"{spec.source}: no setting on the factor steps meets every [[constraint]]; "
+                             "refine a step or relax a constraint")
+        if method in ("space-filling", "sobol"):
+            Pc = spec.to_coded(pool)
+            X = pool[designs.maximin_subset(Pc, n)]
+            notes.append(f"{method}: {n} runs chosen by maximin from {len(pool)} allowed settings on the "
+                         "step grid (the constraints rule out a Latin hypercube)")
+            if len(np.unique(X, axis=0)) < n:
+                notes.append(f"only {len(np.unique(X, axis=0))} distinct allowed settings on the step "
+                             f"grid; the other runs repeat them")
+        else:
+            X = (self._on_steps(spec.to_natural(U[:n])) if method == "ccd-circumscribed"
+                 else spec.round_to_step(spec.to_natural(U[:n])))
+            ok = spec.allowed(X)
+            if (~ok).any():
+                names = sorted({c for b in lin.broken(spec.to_coded(X[~ok])) for c in b})
+                notes.append(f"{method}: {int((~ok).sum())} of {n} points break constraint(s) "
+                             + ", ".join(f"'{c}'" for c in names) + " and were dropped; the design is no "
+                             "longer balanced, so consider space-filling instead")
+            X = X[ok]
+        if centre:
+            c = spec.round_to_step(spec.to_natural(np.full((1, spec.d), 0.5)))
+            if not spec.allowed(c)[0]:
+                Pc = spec.to_coded(pool)
+                c = pool[[int(np.argmin(((Pc - 0.5) ** 2).sum(axis=1)))]]
+                notes.append("the centre breaks a constraint; centre runs moved to the nearest allowed "
+                             "setting: " + ", ".join(f"{f} = {v:g}" for f, v in zip(spec.factor_names, c[0])))
+            X = np.vstack([X, np.repeat(c, centre, axis=0)])
+        if not len(X):
+            raise InputError(f"{method}: every point breaks a [[constraint]]; use --method space-filling")
+        return X
 
     def _snap_in_strata(self, U: np.ndarray, n: int) -> np.ndarray:
         """Round a Latin hypercube to each factor's step without leaving any point's stratum.
 
         Plain rounding can push a point into a neighbouring stratum and break the one-point-per-stratum
         property (McKay, Beckman & Conover 1979); here each value moves to the nearest step multiple
-        inside its own stratum, or stays unrounded when the stratum holds no multiple.
+        inside its own stratum. When the stratum holds no multiple (fewer step levels than runs) the value
+        is rounded to the nearest multiple anyway: every run must be settable, so the Latin property
+        gives way for that factor.
         """
         X = self.spec.to_natural(U)
         for j, f in enumerate(self.spec.factors):
@@ -193,6 +257,8 @@ class Study:
                 grid = grid[(grid >= a) & ((grid < b) | (s == n - 1)) & (grid <= f.high)]
                 if len(grid):
                     X[i, j] = np.round(grid[np.argmin(np.abs(grid - X[i, j]))], 10)
+                else:  # fewer levels than runs: the step grid wins over the stratum
+                    X[i, j] = f.round(X[i, j])
             X[n:, j] = f.round(X[n:, j])
         return X
 
@@ -201,18 +267,39 @@ class Study:
         append_runs(self.runs_path, self.spec, frame)
         self.runs = read_runs(self.runs_path, self.spec)
 
-    def record_results(self, results: pd.DataFrame) -> None:
-        """Fill in measured results of existing runs (by run id) and rewrite the table atomically."""
-        frame = self.runs.frame.set_index("run")
-        res = results.set_index("run")
-        unknown = [r for r in res.index if r not in frame.index]
-        if unknown:
-            raise InputError(f"results name unknown run ids: {', '.join(map(str, unknown[:5]))}")
-        for c in res.columns:
-            if c in frame.columns:
-                frame.loc[res.index, c] = res[c]
-        write_runs(self.runs_path, self.spec, frame.reset_index())
+    def record_results(self, results: pd.DataFrame, replace: bool = False, source: str = "results"):
+        """Merge measured results into their runs by run id; rewrite the table atomically.
+
+        See :mod:`windowfinder.inputs.measurements` for the checks; on any refusal nothing is written.
+        Returns the :class:`~windowfinder.inputs.measurements.Recorded` summary.
+        """
+        from windowfinder.inputs.measurements import frame_rows
+
+        return self._record(*frame_rows(results), source=source, replace=replace)
+
+    def record_file(self, path, replace: bool = False):
+        """Merge a results file (CSV, or XLSX with openpyxl) into its runs by run id; see :meth:`record_results`."""
+        from windowfinder.inputs.runs import _raw_rows
+
+        path = Path(path)
+        if not path.exists():
+            raise InputError(f"{path}: results file not found; give a CSV with a run column and the "
+                             "measured responses")
+        return self._record(*_raw_rows(path), source=path.name, replace=replace)
+
+    def _record(self, header, rows, lines, source, replace):
+        from windowfinder.inputs.measurements import merge_results
+
+        if self.runs_path.suffix.lower() != ".csv":
+            raise InputError(f"{self.runs_path.name}: results are only merged into a CSV run table; save "
+                             "it as runs.csv")
+        if not len(self.runs):
+            raise InputError(f"{self.runs_path.name}: no runs to record results for; plan runs first "
+                             "(windowfinder design)")
+        rec = merge_results(self.runs, header, rows, lines, source, replace=replace)
+        write_runs(self.runs_path, self.spec, rec.frame)
         self.runs = read_runs(self.runs_path, self.spec)
+        return rec
 
     # -- models ----------------------------------------------------------------------------------
     def training_data(self):
@@ -318,8 +405,12 @@ class Study:
         planned = self.runs.X_coded(self.runs.planned())
         X_known = np.vstack([fit.X_runs, planned]) if len(planned) else fit.X_runs
 
-        def snap(U):
-            return spec.to_coded(spec.round_to_step(spec.to_natural(U)))
+        lin = spec.linear
+
+        def snap(U):  # onto the step grid; NaN marks a setting that breaks a constraint (never run)
+            V = spec.snap_coded(U)
+            V[~lin.feasible(V)] = np.nan
+            return V
 
         sug = suggest(fit.surrogates, limits_of(spec), [(r.name, r.goal, r.target) for r in spec.goals],
                       X_known, count, aim=aim, confidence=confidence, seed=seed, snap=snap,

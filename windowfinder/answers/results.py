@@ -17,6 +17,7 @@ from scipy.stats import qmc
 from windowfinder.errors import InputError
 from windowfinder.answers.feasibility import Feasibility, extrapolation_threshold
 from windowfinder.answers.support import judge_extent, runs_needed, study_folder, support_of
+from windowfinder.inputs.constraints import box_range
 from windowfinder.inputs.spec import StudySpec
 
 CAUTION_GENERAL = ("A window is a statistical estimate from limited tests, not a safety assessment; "
@@ -106,6 +107,7 @@ class ProcessWindow:
     safety: bool = False
     supported: bool = True
     advice: str = ""
+    constraints: list[dict] = field(default_factory=list)
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -164,6 +166,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
         sp = spec.to_coded([set_point[f] for f in spec.factor_names])[0]
         if ((sp < 0) | (sp > 1)).any():
             raise InputError("--set-point: a value lies outside the factor's low..high in study.toml")
+    if sp is not None and not spec.linear.feasible(sp)[0]:
+        raise InputError("--set-point: it breaks a [[constraint]] in study.toml; choose an allowed set point")
     res = search_window(spec, feas, confidence, sp, seed)
     diags = [d.to_dict() for d in fit.diagnostics]
     common = dict(confidence=confidence, diagnostics=diags, mean_only=mean_only, safety=spec.has_safety,
@@ -177,9 +181,7 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              message=msg, **common)
     lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
     lo_n, hi_n = _inward(spec, lo_n, hi_n) or (lo_n, hi_n)  # already on the grid: clears float noise
-    tol = np.array([f.tolerance for f in spec.factors])
-    glo_n = np.maximum(lo_n - tol, spec.lows)
-    ghi_n = np.minimum(hi_n + tol, spec.lows + spec.spans)
+    glo_n, ghi_n = guard_band(spec, lo_n, hi_n)
     factors = [{"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
                 "guard_low": float(c), "guard_high": float(e), "tolerance": f.tolerance}
                for f, a, b, c, e in zip(spec.factors, lo_n, hi_n, glo_n, ghi_n)]
@@ -196,6 +198,7 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              message=extent.message, untrusted_share=share, supported=False,
                              advice=extent.advice, **common)
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
+                         constraints=constraint_margins(spec, glo_n, ghi_n),
                          predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
                          cautions=cautions(spec, fit, share, mean_only), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
@@ -211,11 +214,14 @@ def search_window(spec: StudySpec, feas: Feasibility, confidence: float, set_poi
     """
     from windowfinder.answers.window import find_window
 
-    def snap(lower, upper):
-        box = _inward(spec, spec.to_natural(lower)[0], spec.to_natural(upper)[0])
+    def snap(lower, upper):   # guard band inside every constraint between factors, then the step grid
+        box = _inward(spec, *_inside_constraints(spec, spec.to_natural(lower)[0], spec.to_natural(upper)[0]))
         return None if box is None else (spec.to_coded(box[0])[0], spec.to_coded(box[1])[0])
 
-    return find_window(feas.joint, spec.d, confidence, tolerance=spec.tolerances_coded,
+    # a setting that breaks a constraint between factors counts as P = 0: the search keeps it out of the
+    # guard box (all 2^d guard-box corners are verified for d <= 10, which suffices for a convex region);
+    # the snap then checks every d in closed form (_inside_constraints)
+    return find_window(spec.linear.masked(feas.joint), spec.d, confidence, tolerance=spec.tolerances_coded,
                        set_point=set_point, seed=spec.seed if seed is None else seed, nested=True,
                        snap=snap)
 
@@ -270,6 +276,40 @@ def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: 
             "failed_limit column")
 
 
+def guard_band(spec: StudySpec, lo_n, hi_n):
+    """The window's guard band in natural units: its ranges widened by each tolerance, kept in bounds."""
+    tol = np.array([f.tolerance for f in spec.factors])
+    return np.maximum(lo_n - tol, spec.lows), np.minimum(hi_n + tol, spec.lows + spec.spans)
+
+
+def constraint_margins(spec: StudySpec, lo_n, hi_n) -> list[dict]:
+    """Each constraint between factors with its smallest margin over the box ``lo_n..hi_n`` (natural
+    units; closed form over the corners, met when >= 0)."""
+    out = []
+    for c in spec.constraints:
+        coef = [c.terms.get(f, 0.0) for f in spec.factor_names]
+        smallest, largest = box_range(coef, lo_n, hi_n)
+        m = min(np.inf if c.max is None else c.max - largest, np.inf if c.min is None else smallest - c.min)
+        out.append({**c.to_dict(), "text": c.text(), "smallest_margin": float(m)})
+    return out
+
+
+def _inside_constraints(spec: StudySpec, lo_n, hi_n):
+    """Shrink the window about its centre until its guard band meets every constraint between factors.
+
+    Closed form (support function of a box, see :mod:`windowfinder.inputs.constraints`), with the
+    guard band taken unclipped, which is conservative. A sub-box of the verified window keeps its
+    lowest probability. Leaves a window whose guard band is already inside unchanged.
+    """
+    lin = spec.linear
+    if not lin or lin.box_inside(*(spec.to_coded(g)[0] for g in guard_band(spec, lo_n, hi_n))):
+        return lo_n, hi_n
+    lo, hi = spec.to_coded(lo_n)[0], spec.to_coded(hi_n)[0]
+    m, half = (lo + hi) / 2.0, (hi - lo) / 2.0
+    s = max(0.0, lin.shrink_share(m, half, spec.tolerances_coded)) * (1.0 - 1e-9)
+    return spec.to_natural(m - s * half)[0], spec.to_natural(m + s * half)[0]
+
+
 def _inward(spec: StudySpec, lo, hi):
     """Window ranges rounded inward to each factor's step, so every corner can be set; None when a range
     would be narrower than one step (a window of zero width is no window).
@@ -317,8 +357,11 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
                    pick: str = "knee", seed: int | None = None, **search) -> TradeoffTable:
     """Constrained multi-objective search on the models (see :func:`tradeoff.find_tradeoff`).
 
-    Front settings are rounded to each factor's step afterwards; a rounded setting whose probability
-    falls below the confidence is dropped, and the balanced pick is chosen among the rest.
+    Constraints between factors enter the search as pymoo inequality constraints; offspring are moved
+    onto the factor steps by a pymoo repair before they are evaluated. Front settings are rounded to
+    each factor's step once more afterwards (a no-op unless a step was absent from the search); a rounded setting whose probability falls below the
+    confidence, or that rounding moved across a constraint, is dropped, and the balanced pick is chosen
+    among the rest.
     """
     from windowfinder.answers.tradeoff import desirability, find_tradeoff, knee_point
 
@@ -332,6 +375,7 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
                              cautions(spec, fit, None, mean_only), False, sup.advice)
     prob_fn = feasibility_of(spec, fit, mean_only).joint if spec.limited else \
         (lambda X: np.ones(len(X)))
+    lin = spec.linear
     goals = _desirability_goals(spec, fit)
 
     def desir(X):
@@ -339,7 +383,9 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
         return desirability(values, goals)
 
     res = find_tradeoff(obj_fn, prob_fn, spec.d, confidence, len(names), seed=seed, pick=pick,
-                        desirability=desir if pick == "desirability" else None, **search)
+                        desirability=desir if pick == "desirability" else None,
+                        constraints=(lin.A, lin.b) if lin else None,
+                        snap=spec.snap_coded if spec.has_steps else None, **search)
     X = spec.round_to_step(spec.to_natural(res.X)) if len(res.X) else np.empty((0, spec.d))
     if len(X):  # rounding can merge neighbours: keep each setting once, in front order
         _, first = np.unique(X, axis=0, return_index=True)
@@ -348,7 +394,7 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     p = prob_fn(U) if len(U) else np.empty(0)
     runs = np.unique(fit.X_runs, axis=0)   # settings far from every run: no claim (answers.support)
     far = cdist(U, runs).min(axis=1) > extrapolation_threshold(runs) if len(U) else np.zeros(0, bool)
-    keep = (p >= confidence) & ~far
+    keep = (p >= confidence) & ~far & lin.feasible(U)
     X, U, p = X[keep], U[keep], p[keep]
     frame = pd.DataFrame(X, columns=spec.factor_names)
     chosen = -1
@@ -364,7 +410,8 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
         message = (f"{len(frame)} settings on the trade-off front meet all limits with probability "
                    f">= {confidence:g}; balanced pick by {res.pick_method}")
         if (~keep & ~far).any():
-            message += f" ({int((~keep & ~far).sum())} dropped after rounding to the factor steps)"
+            message += (f" ({int((~keep & ~far).sum())} dropped after rounding to the factor steps: below "
+                        "the confidence or breaking a constraint)")
         if far.any():
             message += (f" ({int(far.sum())} dropped: farther than {extrapolation_threshold(runs):.2g} "
                         "coded units from every run)")

@@ -33,6 +33,7 @@ from pymoo.algorithms.moo.nsga2 import NSGA2
 from pymoo.algorithms.moo.nsga3 import NSGA3
 from pymoo.algorithms.soo.nonconvex.ga import GA
 from pymoo.core.problem import Problem
+from pymoo.core.repair import Repair
 from pymoo.indicators.igd import IGD
 from pymoo.optimize import minimize
 from pymoo.util.nds.non_dominated_sorting import NonDominatedSorting
@@ -113,23 +114,41 @@ class _ChanceConstrainedProblem(Problem):
     points found early are not lost when the population moves on; remembers the best probability seen.
     """
 
-    def __init__(self, objective_fn, prob_fn, d, n_obj, confidence):
-        super().__init__(n_var=d, n_obj=n_obj, n_ieq_constr=1, xl=0.0, xu=1.0)
+    def __init__(self, objective_fn, prob_fn, d, n_obj, confidence, constraints=None):
+        A, b = (np.empty((0, d)), np.empty(0)) if constraints is None else (
+            np.asarray(constraints[0], dtype=float).reshape(-1, d), np.asarray(constraints[1], dtype=float))
+        super().__init__(n_var=d, n_obj=n_obj, n_ieq_constr=1 + len(b), xl=0.0, xu=1.0)
         self.objective_fn = objective_fn
         self.prob_fn = prob_fn
         self.confidence = confidence
+        self.A, self.b = A, b
         self.best_p = 0.0
         self.archive = (np.empty((0, d)), np.empty((0, n_obj)), np.empty(0))
 
     def _evaluate(self, x, out, *args, **kwargs):
         F, P = _evaluate_callables(self.objective_fn, self.prob_fn, x, self.n_obj)
-        self.best_p = max(self.best_p, float(P.max()))
-        ok = P >= self.confidence
+        G_lin = x @ self.A.T - self.b[None, :]   # linear constraints between factors, A x - b <= 0
+        allowed = np.all(G_lin <= 1e-9, axis=1)
+        if allowed.any():
+            self.best_p = max(self.best_p, float(P[allowed].max()))
+        ok = (P >= self.confidence) & allowed
         if ok.any():
             merged = [np.concatenate([a, b[ok]]) for a, b in zip(self.archive, (x, F, P))]
             self.archive = _non_dominated(*merged)
         out["F"] = F
-        out["G"] = (self.confidence - P)[:, None]
+        out["G"] = np.hstack([(self.confidence - P)[:, None], G_lin])
+
+
+class _GridRepair(Repair):
+    """Moves every offspring onto the factor steps before it is evaluated (round, then the
+    constraints judge the rounded setting), so the search only ever sees settable points."""
+
+    def __init__(self, snap):
+        super().__init__()
+        self.snap = snap
+
+    def _do(self, problem, X, **kwargs):
+        return np.asarray(self.snap(np.clip(X, 0.0, 1.0)), dtype=float).reshape(X.shape)
 
 
 def _evaluate_callables(objective_fn, prob_fn, X, n_obj):
@@ -167,15 +186,15 @@ def _das_dennis_partitions(n_obj, pop_size):
     return p
 
 
-def _algorithm(n_obj, pop_size, sampling):
+def _algorithm(n_obj, pop_size, sampling, repair=None):
     """NSGA-II for two goals, NSGA-III for three or more, a real-coded GA for one."""
     if n_obj == 1:
-        return GA(pop_size=pop_size, sampling=sampling, eliminate_duplicates=True)
+        return GA(pop_size=pop_size, sampling=sampling, eliminate_duplicates=True, repair=repair)
     if n_obj == 2:
-        return NSGA2(pop_size=pop_size, sampling=sampling, eliminate_duplicates=True)
+        return NSGA2(pop_size=pop_size, sampling=sampling, eliminate_duplicates=True, repair=repair)
     ref_dirs = get_reference_directions("das-dennis", n_obj, n_partitions=_das_dennis_partitions(n_obj, pop_size))
     return NSGA3(ref_dirs=ref_dirs, pop_size=max(pop_size, len(ref_dirs)), sampling=sampling,
-                 eliminate_duplicates=True)
+                 eliminate_duplicates=True, repair=repair)
 
 
 def _non_dominated(X, F, P):
@@ -209,7 +228,8 @@ def _spread_subset(F, k) -> np.ndarray:
 
 
 def find_tradeoff(objective_fn, prob_fn, d, confidence, n_obj, seed=0, pop_size=None, n_gen=None,
-                  pick="knee", desirability=None, x0=None, max_points=None) -> TradeoffResult:
+                  pick="knee", desirability=None, x0=None, max_points=None,
+                  constraints=None, snap=None) -> TradeoffResult:
     """Constrained Pareto set of the goals where all limits hold with probability ``>= confidence``.
 
     Parameters
@@ -239,6 +259,12 @@ def find_tradeoff(objective_fn, prob_fn, d, confidence, n_obj, seed=0, pop_size=
         Extra starting settings (e.g. the runs) placed in the initial population.
     max_points : int, optional
         Most points returned on the front (default ``pop_size``).
+    constraints : tuple (A, b), optional
+        Linear constraints between factors in coded units, ``A x <= b``; each row is one more pymoo
+        inequality ``a . x - b <= 0`` beside the chance constraint, and no front point breaks one.
+    snap : callable, optional
+        ``(n, d) -> (n, d)`` coded settings moved onto the factor steps; applied to the initial
+        population and, as a pymoo repair, to every offspring before it is evaluated.
 
     Notes
     -----
@@ -262,9 +288,11 @@ def find_tradeoff(objective_fn, prob_fn, d, confidence, n_obj, seed=0, pop_size=
     pop_size = int(pop_size or DEFAULT_POP_SIZE)
     n_gen = int(n_gen or DEFAULT_N_GEN)
 
-    problem = _ChanceConstrainedProblem(objective_fn, prob_fn, d, n_obj, confidence)
+    problem = _ChanceConstrainedProblem(objective_fn, prob_fn, d, n_obj, confidence, constraints)
     sampling = _initial_population(d, pop_size, seed, x0)
-    algorithm = _algorithm(n_obj, pop_size, sampling)
+    if snap is not None:
+        sampling = np.asarray(snap(sampling), dtype=float).reshape(sampling.shape)
+    algorithm = _algorithm(n_obj, pop_size, sampling, _GridRepair(snap) if snap is not None else None)
     minimize(problem, algorithm, ("n_gen", n_gen), seed=seed, verbose=False)
     X, F, P = problem.archive
     keep = _spread_subset(F, int(max_points or pop_size))

@@ -98,6 +98,10 @@ def window_markdown(win, study_name: str) -> str:
         for f in win.factors:
             out.append(f"| {md(f['name'])} | {_g(f['low'])} | {_g(f['high'])} | {md(f['unit'])} | "
                        f"± {_g(f['tolerance'])} | {_g(f['guard_low'])} – {_g(f['guard_high'])} |")
+        if getattr(win, "constraints", None):
+            out += ["", "The whole guard band meets every constraint between factors:", ""]
+            out += [f"- {c['name']}: {c['text']} (smallest margin {_g(c['smallest_margin'])})"
+                    for c in win.constraints]
         out += ["", "Lowest probability at: " + ", ".join(
             f"{md(k)} = {_g(v)}" for k, v in win.worst_point.items()), "",
             "## Predicted responses inside the window (guard band included)", "",

@@ -174,6 +174,33 @@ def one_factor_at_a_time(d: int, levels: int = 3, centre: int = 0) -> np.ndarray
     return _with_centre(np.array(rows), centre)
 
 
+def maximin_subset(C: np.ndarray, n: int) -> np.ndarray:
+    """Indices of ``n`` rows of the candidate set ``C`` chosen greedily for the largest smallest distance.
+
+    The CADEX algorithm of Kennard & Stone (1969), "Computer aided design of experiments",
+    Technometrics 11(1): start from the candidate nearest the candidates' mean, then repeatedly add the
+    candidate farthest from those chosen (Gonzalez 1985 farthest-point rule). Used for space-filling
+    designs in a region cut by constraints, where no Latin hypercube exists. When ``n`` exceeds the
+    number of distinct candidates, the choice cycles (replicates), since a step grid may hold fewer
+    settings than runs asked for.
+    """
+    C = np.asarray(C, dtype=float)
+    m = len(C)
+    if m == 0 or n < 1:
+        return np.empty(0, dtype=int)
+    first = int(np.argmin(((C - C.mean(axis=0)) ** 2).sum(axis=1)))
+    chosen = [first]
+    gap = ((C - C[first]) ** 2).sum(axis=1)
+    while len(chosen) < min(n, m):
+        i = int(np.argmax(gap))
+        if gap[i] <= 0.0:  # only repeats left
+            break
+        chosen.append(i)
+        gap = np.minimum(gap, ((C - C[i]) ** 2).sum(axis=1))
+    idx = np.asarray(chosen)
+    return np.resize(idx, n)  # cycles through the distinct choice when n > len(idx)
+
+
 def _method(method: str) -> str:
     key = str(method).strip().lower().replace("_", "-")
     if key not in METHODS:

@@ -112,6 +112,10 @@ class RunTable:
         out = ((U < -1e-9) | (U > 1 + 1e-9)).any(axis=1)
         return pd.Series(out, index=self.frame.index)
 
+    def breaking(self) -> pd.Series:
+        """Names of the constraints between factors each run breaks (kept; empty list when none)."""
+        return pd.Series(self.spec.linear.broken(self.X_coded()), index=self.frame.index, dtype=object)
+
     def to_frame(self) -> pd.DataFrame:
         return self.frame.copy()
 
@@ -205,6 +209,21 @@ def _number(cell: str, where: str, column: str, allow_blank: bool) -> float:
     return v
 
 
+def row_cells(cells, n_columns: int, run_column: int, name: str, line: int, empty_hint: str):
+    """One table row: cells padded to the header, its run id and the ``where`` of its messages.
+
+    Refuses a row with more cells than columns and a row without a run id (one line naming the line).
+    """
+    cells = [str(c) for c in cells] + [""] * (n_columns - len(cells))
+    if len(cells) > n_columns:
+        raise InputError(f"{name} line {line}: {len(cells)} cells but {n_columns} columns; "
+                         "check for stray commas or a decimal comma")
+    run = cells[run_column].strip()
+    if not run:
+        raise InputError(f"{name} line {line}: empty run id; {empty_hint}")
+    return cells, run, f"{name} line {line} (run {run})"
+
+
 def read_runs(path, spec: StudySpec) -> RunTable:
     """Read and validate a run table (CSV, or XLSX when openpyxl is installed)."""
     path = Path(path)
@@ -231,14 +250,8 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     col = {c: i for i, c in enumerate(header)}
     records, seen, warnings, lines_of = [], {}, [], []
     for cells, line in zip(rows, line_nos):
-        cells = cells + [""] * (len(header) - len(cells))
-        if len(cells) > len(header):
-            raise InputError(f"{name} line {line}: {len(cells)} cells but {len(header)} columns; "
-                             "check for stray commas or a decimal comma")
-        run = cells[col["run"]].strip()
-        where = f"{name} line {line} (run {run or '?'})"
-        if not run:
-            raise InputError(f"{name} line {line}: empty run id; give every run a unique id")
+        cells, run, where = row_cells(cells, len(header), col["run"], name, line,
+                                      "give every run a unique id")
         if run in seen:
             raise InputError(f"{where}: duplicate run id '{run}' (also on line {seen[run]}); "
                              "make ids unique")
@@ -272,7 +285,24 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     if out.any():
         ids = ", ".join(frame.loc[out, "run"].astype(str).tolist()[:10])
         warnings.append(f"{name}: runs outside the study bounds (kept, treated as extrapolation): {ids}")
+    if spec.constraints and len(frame):
+        broken = table.breaking()
+        for con in spec.constraints:
+            ids = frame.loc[[con.name in b for b in broken], "run"].astype(str).tolist()
+            if ids:
+                more = f" and {len(ids) - 10} more" if len(ids) > 10 else ""
+                warnings.append(f"{name}: runs breaking constraint '{con.name}' ({con.text()}), kept and "
+                                f"flagged; never repeat them: {', '.join(ids[:10])}{more}")
     warnings += _spread_warnings(table, name)
+    check_transforms(spec, frame, lambda i: f"{name} line {lines_of[i]} (run {frame.loc[i, 'run']})")
+    return table
+
+
+def check_transforms(spec: StudySpec, frame: pd.DataFrame, where) -> None:
+    """Refuse a measured value of a done run beyond the physical bounds of its response's transform.
+
+    ``where(i)`` names the row with frame index ``i`` for the one-line message.
+    """
     for r in spec.responses:
         if r.transform != "none":
             done = frame[frame["status"] == "done"][r.name].dropna()
@@ -280,11 +310,9 @@ def read_runs(path, spec: StudySpec) -> RunTable:
             # a value AT a bound is kept (models.transform moves it inside); beyond it is an error
             strict = done[(done < lo) | (done > hi)] if r.transform == "logit" else done[done < lo]
             if len(strict):
-                i = strict.index[0]
-                raise InputError(f"{name} line {lines_of[i]} (run {frame.loc[i, 'run']}): '{r.name}' = "
-                                 f"{strict.iloc[0]:g} lies beyond the physical bounds of transform = "
-                                 f"'{r.transform}'; check the value or the bounds in study.toml")
-    return table
+                raise InputError(f"{where(strict.index[0])}: '{r.name}' = {strict.iloc[0]:g} lies beyond "
+                                 f"the physical bounds of transform = '{r.transform}'; check the value or "
+                                 "the bounds in study.toml")
 
 
 def _failed_limit(text: str, status: str, spec: StudySpec, where: str) -> str:

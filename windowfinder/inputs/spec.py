@@ -17,6 +17,7 @@ from pathlib import Path
 import numpy as np
 
 from windowfinder.errors import InputError
+from windowfinder.inputs.constraints import Constraint, LinearConstraints, bounded_margin, box_range
 from windowfinder.inputs.names import name_problem
 from windowfinder.inputs.storage import read_bytes, readable_file
 
@@ -28,7 +29,8 @@ MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.
 STUDY_KEYS = ("name", "confidence", "seed", "description")
 FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
 RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds", "model")
-TOP_KEYS = ("study", "factor", "response")
+CONSTRAINT_KEYS = ("name", "terms", "min", "max")
+TOP_KEYS = ("study", "factor", "response", "constraint")
 # Largest magnitude accepted for a number in the study file: far beyond any physical quantity in sensible
 # units, and small enough that squares and differences of such numbers stay finite in float64
 # (common practice, no source).
@@ -113,13 +115,7 @@ class Response:
 
     def margin(self, y):
         """Smallest limit margin, ``y - min`` or ``max - y``; a limit is met when it is >= 0."""
-        y = np.asarray(y, dtype=float)
-        m = np.full(y.shape, np.inf)
-        if self.min is not None:
-            m = np.minimum(m, y - self.min)
-        if self.max is not None:
-            m = np.minimum(m, self.max - y)
-        return m
+        return bounded_margin(y, self.min, self.max)
 
     def limit_text(self) -> str:
         u = f" {self.unit}" if self.unit else ""
@@ -143,6 +139,7 @@ class StudySpec:
     seed: int = 0
     description: str = ""
     source: str = "study.toml"
+    constraints: tuple[Constraint, ...] = ()
 
     # -- names and sizes -------------------------------------------------------------------------
     @property
@@ -206,9 +203,26 @@ class StudySpec:
         U = np.atleast_2d(np.asarray(U, dtype=float))
         return self.lows + U * self.spans
 
+    @property
+    def linear(self) -> LinearConstraints:
+        """The constraints between factors in coded units (``A u <= b``); empty when there are none."""
+        return LinearConstraints(self.constraints, self.factor_names, self.lows, self.spans)
+
+    def allowed(self, X) -> np.ndarray:
+        """True for the rows of natural settings ``X`` that meet every constraint between factors."""
+        return self.linear.feasible(self.to_coded(X))
+
     def round_to_step(self, X) -> np.ndarray:
         X = np.atleast_2d(np.asarray(X, dtype=float))
         return np.column_stack([f.round(X[:, j]) for j, f in enumerate(self.factors)])
+
+    def snap_coded(self, U) -> np.ndarray:
+        """Coded settings moved onto the factor steps (and into the bounds), still in coded units."""
+        return self.to_coded(self.round_to_step(self.to_natural(U)))
+
+    @property
+    def has_steps(self) -> bool:
+        return any(f.step for f in self.factors)
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -316,9 +330,62 @@ class _Parser:
             self.fail("[[response]]", "no responses; add at least one [[response]] table")
         fs = tuple(self.factor(t, i + 1) for i, t in enumerate(factors))
         rs = tuple(self.response(t, i + 1) for i, t in enumerate(responses))
+        cons = data.get("constraint", [])
+        if not isinstance(cons, list):
+            self.fail("[[constraint]]", "write each constraint as a [[constraint]] table")
+        seen: set = set()
+        cs = tuple(self.constraint(t, i + 1, fs, seen) for i, t in enumerate(cons))
+        self.jointly_feasible(cs, fs)
         return StudySpec(name=self.text(st, "name", "[study]", default="unnamed study"),
                          description=self.text(st, "description", "[study]"),
-                         confidence=conf, seed=seed, factors=fs, responses=rs, source=self.source)
+                         confidence=conf, seed=seed, factors=fs, responses=rs, source=self.source,
+                         constraints=cs)
+
+    def constraint(self, t, i, factors, seen) -> Constraint:
+        where = self.where("constraint", t, i)
+        self.keys(t, CONSTRAINT_KEYS, where)
+        if "name" not in t:
+            self.fail(where, "missing key 'name'; name the constraint, e.g. name = \"no burn-through\"")
+        name = self.text(t, "name", where).strip()
+        if not name:
+            self.fail(where, "'name' is empty")
+        if name in seen:
+            self.fail(where, f"duplicate constraint name '{name}'; constraint names must be unique")
+        seen.add(name)
+        terms = t.get("terms")
+        if not isinstance(terms, dict) or not terms:
+            self.fail(where, "needs terms = { factor = coefficient, ... } with at least one factor")
+        names = [f.name for f in factors]
+        coef = {}
+        for k in terms:
+            if k not in names:
+                self.fail(where, f"terms: unknown factor '{k}'; " + _nearest(k, names).replace(
+                    "valid keys", "factors are"))
+            coef[k] = self.number(terms, k, f"{where} terms")
+        if all(c == 0.0 for c in coef.values()):
+            self.fail(where, "every coefficient in terms is 0; give at least one non-zero coefficient")
+        lo = self.number(t, "min", where)
+        hi = self.number(t, "max", where)
+        if lo is None and hi is None:
+            self.fail(where, "needs min and/or max: the bound on the sum of coefficient x setting")
+        if lo is not None and hi is not None and lo > hi:
+            self.fail(where, f"min = {lo:g} must not exceed max = {hi:g}")
+        c = [coef.get(f.name, 0.0) for f in factors]
+        smallest, largest = box_range(c, [f.low for f in factors], [f.high for f in factors])
+        if (hi is not None and smallest > hi) or (lo is not None and largest < lo):
+            self.fail(where, f"no setting within the factor bounds meets it: the sum ranges over "
+                      f"{smallest:g} .. {largest:g} there; fix the coefficients, min/max or the bounds")
+        return Constraint(name=name, terms=coef, min=lo, max=hi)
+
+    def jointly_feasible(self, cs, factors):
+        """All constraints together must leave some setting within the bounds (LP feasibility)."""
+        if len(cs) < 2:
+            return
+        lin = LinearConstraints(cs, [f.name for f in factors], [f.low for f in factors],
+                                [f.high - f.low for f in factors])
+        if lin.feasible_point() is None:
+            self.fail("[[constraint]]", "the constraints " + ", ".join(f"'{c.name}'" for c in cs)
+                      + " together exclude every setting within the factor bounds; relax one of them")
 
     def factor(self, t, i) -> Factor:
         where = self.where("factor", t, i)

@@ -19,11 +19,23 @@ REPLICATE_MARGIN = 2.0
 
 
 def on_grid(snap, U):
-    """Clip to the unit cube, snap to the steps, drop rows the snap moved outside."""
+    """Clip to the unit cube, snap to the steps, drop rows the snap moved outside or marked NaN.
+
+    ``snap`` returns NaN in a row for a setting that must never be run (it breaks a constraint between
+    factors), so no candidate, polished pick or replicate can land there.
+    """
     U = np.clip(np.asarray(U, dtype=float), 0.0, 1.0)
     V = np.asarray(snap(U), dtype=float).reshape(U.shape)
-    inside = np.all((V >= -1e-12) & (V <= 1.0 + 1e-12), axis=1)
+    inside = np.all(np.isfinite(V) & (V >= -1e-12) & (V <= 1.0 + 1e-12), axis=1)
     return np.clip(V[inside], 0.0, 1.0)
+
+
+def allowed(snap, U):
+    """Rows of ``U`` that the snap keeps (not marked NaN): completed runs that may be repeated."""
+    U = np.asarray(U, dtype=float)
+    if not len(U):
+        return U
+    return U[np.all(np.isfinite(np.asarray(snap(U), dtype=float).reshape(U.shape)), axis=1)]
 
 
 def _distance(C, blocked):
@@ -62,7 +74,7 @@ def pick(score_fn, base, X_runs, picks, min_distance, snap, rng):
         ties = free & (S >= best - 1e-12 * max(1.0, abs(best)))
         i = np.flatnonzero(ties)[np.argmax(dist[ties])]   # equal scores: farthest from all runs
         x, sx = _polish(score_fn, C[i], S[i], snap, blocked, min_distance)
-    runs = np.unique(X_runs, axis=0) if len(X_runs) else X_runs
+    runs = allowed(snap, np.unique(X_runs, axis=0)) if len(X_runs) else X_runs
     if picks and len(runs):
         runs = runs[_distance(runs, np.vstack(picks)) >= min_distance]
     if len(runs):

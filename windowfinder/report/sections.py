@@ -97,6 +97,17 @@ def data(c: Content) -> str:
         html_table(frame.loc[outside, ["run", *spec.factor_names, "status", "note"]]) +
         para("They are kept in the models; maps and windows cover the study bounds only.")
         if outside.any() else para("None.")))
+    if spec.constraints:
+        breaking = runs.breaking()
+        bad = breaking.map(bool)
+        out.append("<h3>Constraints between factors</h3>" + para(
+            "Settings that must never be run; designs, suggestions, the trade-off and the window with "
+            "its guard band stay inside: " + "; ".join(f"{k.name}: {k.text()}" for k in spec.constraints)
+            + "."))
+        if bad.any():
+            shown = frame.loc[bad, ["run", *spec.factor_names, "status"]].copy()
+            shown["breaks"] = [", ".join(b) for b in breaking[bad]]
+            out.append(html_table(shown) + para("These runs are kept in the models; never repeat them."))
     groups, pooled = tables.replicates(frame, spec, c.fit.diagnostics)
     out.append("<h3>Replicates and run-to-run scatter</h3>")
     if len(groups):
