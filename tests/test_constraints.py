@@ -368,3 +368,17 @@ def test_cli_design_and_record_with_constraint(tmp_path, capsys):
     assert main(["record", str(d), str(tmp_path / "results.csv")]) == 0
     assert "recorded 42 values for 21 runs (0 failed)" in capsys.readouterr().out
     assert (Study.load(d).runs.status == "done").all()
+
+
+def test_space_filling_batch_skips_forbidden_settings():
+    # the fallback batch when the models cannot carry a claim (answers.support) gets the same snap
+    from windowfinder.answers.support import space_filling_batch
+
+    def snap(U):
+        V = np.round(np.asarray(U, dtype=float) * 4) / 4
+        V[V[:, 0] + V[:, 1] > 1.0] = np.nan      # forbidden: u0 + u1 > 1
+        return V
+
+    X = space_filling_batch(np.empty((0, 2)), 6, 2, seed=0, snap=snap)
+    assert len(X) == 6 and np.all(np.isfinite(X))
+    assert np.all(X.sum(axis=1) <= 1.0 + 1e-12) and np.allclose(X * 4, np.round(X * 4))

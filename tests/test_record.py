@@ -53,7 +53,7 @@ def test_record_merges_values_and_statuses(planned, capsys):
     assert runs.loc["R002", "yield"] == 83.25 and runs.loc["R002", "exotherm"] == 31.5
     assert runs.loc["R002", "status"] == "done"
     assert pd.isna(runs.loc["R003", "yield"]) and runs.loc["R003", "exotherm"] == 42.0
-    assert runs.loc["R003", "note"] == "design sobol; lab B"
+    assert runs.loc["R003", "note"] == "lab B" and runs.loc["R002", "note"] == "design sobol"
     assert runs.loc["R004", "status"] == "planned"           # not in the results: untouched
     assert runs.loc["R001", "yield"] == 78.1                 # done before: untouched
     assert "recorded 3 values for 2 runs" in out

@@ -191,8 +191,9 @@ def space_filling_batch(X_known: np.ndarray, count: int, d: int, seed: int = 0, 
     from windowfinder.inputs.designs import sobol
 
     C = sobol(d, n_candidates, seed)
-    if snap is not None:
-        C = np.unique(snap(C), axis=0)
+    if snap is not None:  # a snap marks settings that must never be run with NaN (study constraints)
+        C = np.asarray(snap(C), dtype=float)
+        C = np.unique(C[np.all(np.isfinite(C), axis=1)], axis=0)
     if accept is not None:
         ok = np.asarray(accept(C), dtype=bool)
         C = C[ok] if ok.any() else C

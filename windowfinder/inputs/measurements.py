@@ -1,7 +1,7 @@
 """Measured results typed in or returned in a file, merged into the planned runs by run id.
 
 A results table has a ``run`` column and any of: response columns, ``status`` (``done`` or ``failed``),
-``note``, and factor columns (which must repeat the planned settings; they are checked, never changed).
+``note`` (replaces the run's planning note when given), and factor columns (which must repeat the planned settings; they are checked, never changed).
 Every row must name a run of runs.csv, once. A measured value already in runs.csv is only overwritten
 with ``replace``; writing the same value again is not an overwrite, so recording one file twice is
 harmless. A row without a status becomes ``done`` when it gives a value, and a row that gives neither
@@ -134,9 +134,8 @@ def _merge_row(frame, i, cells, col, spec, where, replace, out) -> None:
                          f"'{status}'")
     frame.at[i, "status"] = status
     note = cells[col["note"]].strip() if "note" in col else ""
-    if note:
-        old_note = str(frame.at[i, "note"] or "").strip()
-        frame.at[i, "note"] = note if not old_note or note in old_note else f"{old_note}; {note}"
+    if note:  # a note given with the result replaces the planning note
+        frame.at[i, "note"] = note
     out.values += given
     out.failed += status == "failed"
 
