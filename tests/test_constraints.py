@@ -124,6 +124,7 @@ def test_parse_stores_coded_rows_matching_natural_form():
     ('[[constraint]]\nname = "c"\nterms = { power = 1.0 }\nmin = 3\nmax = 2\n', "must not exceed"),
     ('[[constraint]]\nterms = { power = 1.0 }\nmax = 2\n', "missing key 'name'"),
     ('[[constraint]]\nname = "no burn-through"\nterms = { power = 1.0 }\nmax = 3\n', "duplicate"),
+    ('[[constraint]]\nname = "=cmd"\nterms = { power = 1.0 }\nmax = 3\n', "read as a formula"),
     # power + speed ranges over 6 .. 24 within the bounds (by hand): max = 5 cannot be met
     ('[[constraint]]\nname = "c"\nterms = { power = 1.0, speed = 1.0 }\nmax = 5\n', "6 .. 24"),
 ])

@@ -349,6 +349,9 @@ class _Parser:
         name = self.text(t, "name", where).strip()
         if not name:
             self.fail(where, "'name' is empty")
+        problem = name_problem(name)   # the name is written into window.md, the report and warnings
+        if problem:
+            self.fail(where, problem)
         if name in seen:
             self.fail(where, f"duplicate constraint name '{name}'; constraint names must be unique")
         seen.add(name)
