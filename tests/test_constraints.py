@@ -383,3 +383,11 @@ def test_space_filling_batch_skips_forbidden_settings():
     X = space_filling_batch(np.empty((0, 2)), 6, 2, seed=0, snap=snap)
     assert len(X) == 6 and np.all(np.isfinite(X))
     assert np.all(X.sum(axis=1) <= 1.0 + 1e-12) and np.allclose(X * 4, np.round(X * 4))
+
+
+def test_blocks_with_constraint_every_run_inside_and_labelled(tmp_path):
+    study = Study.load(seam_dir(tmp_path))
+    frame = study.design("space-filling", runs=12, blocks=3)
+    X = frame[study.spec.factor_names].to_numpy()
+    assert len(frame) == 12 and np.all(burn(X) <= BURN_MAX + 1e-9)
+    assert sorted(frame["block"].value_counts().tolist()) == [4, 4, 4]
