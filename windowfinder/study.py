@@ -267,10 +267,12 @@ class Study:
         append_runs(self.runs_path, self.spec, frame)
         self.runs = read_runs(self.runs_path, self.spec)
 
-    def record_results(self, results: pd.DataFrame, replace: bool = False, source: str = "results"):
+    def record_results(self, results: pd.DataFrame, replace: bool = True, source: str = "results"):
         """Merge measured results into their runs by run id; rewrite the table atomically.
 
         See :mod:`windowfinder.inputs.measurements` for the checks; on any refusal nothing is written.
+        From code (simulators, scripts) a value already recorded is overwritten by default, as before;
+        give ``replace=False`` for the guarded behaviour of ``windowfinder record`` / :meth:`record_file`.
         Returns the :class:`~windowfinder.inputs.measurements.Recorded` summary.
         """
         from windowfinder.inputs.measurements import frame_rows
