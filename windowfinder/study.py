@@ -313,10 +313,13 @@ class Study:
         return X, Y, works
 
     def censored_data(self):
-        """Failed runs that name the limit they broke, per response: ``{response: (mask, bound, side)}``.
+        """Censored values per response: ``{response: (mask, bound, side)}``.
 
+        Failed runs that name the limit they broke, and values below a detection limit (``<10`` cells).
         ``mask`` runs over the completed runs (the rows of :meth:`training_data`); ``side`` is
-        ``"above"`` for a broken max (the value lay above it) and ``"below"`` for a broken min.
+        ``"above"`` for a broken max (the value lay above it) and ``"below"`` for a broken min or a
+        detection limit; ``bound`` and ``side`` are one value each for broken limits alone, else arrays
+        over the masked runs.
         """
         broke = self.runs.broken_limits(self.runs.completed()).to_numpy()
         out = {}
@@ -329,6 +332,20 @@ class Study:
                                          f"'{r.name}'; censored values on both sides are not supported, "
                                          f"clear {FAILED_LIMIT} on one side")
                     out[r.name] = (mask, float(bound), word)
+        # values below a detection limit ("<10" cells, or 0 with detection_limit) of runs that were done
+        done = (self.runs.completed()["status"] == "done").to_numpy()
+        for r in self.spec.responses:
+            below = self.runs.below(r.name, self.runs.completed())
+            dmask = np.isfinite(below) & done
+            if not dmask.any():
+                continue
+            mask = dmask.copy()
+            bounds, sides = np.where(dmask, below, np.nan), np.where(dmask, "below", "").astype(object)
+            if r.name in out:   # also failed runs past a limit of this response: one censored set
+                fmask, fbound, fside = out[r.name]
+                mask |= fmask
+                bounds[fmask], sides[fmask] = fbound, fside
+            out[r.name] = (mask, bounds[mask], sides[mask])
         return out
 
     def fit(self, kind: str | None = None, n_restarts: int = 5) -> FitResult:
@@ -352,8 +369,9 @@ class Study:
         for mask, _, _ in censored.values():   # explained by the limit they broke, not by the failure model
             works = works | mask
         if blocks is not None and censored:
-            raise InputError(f"{self.runs_path.name}: failed_limit together with a block column is not supported "
-                             "yet; clear failed_limit (the runs then feed the failure model) or the block column")
+            raise InputError(f"{self.runs_path.name}: censored values (failed_limit, or '<' values below a "
+                             "detection limit) together with a block column are not supported yet; clear "
+                             "failed_limit (the runs then feed the failure model) or the block column")
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
             need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)

@@ -6,7 +6,10 @@ share a random offset, :mod:`windowfinder.models.blocks`), optional ``failed_lim
 Units live in study.toml. Empty response cells on a ``done`` run mean "not measured"; a ``failed`` run gave
 no usable product and feeds the failure model, unless its ``failed_limit`` names the limit it broke
 (``response``, or ``response:min`` / ``response:max`` when the response has both): then it is a censored
-value of that response beyond its limit and not a failure-model run. Every problem is refused with one line naming the file, the row (line number and run id)
+value of that response beyond its limit and not a failure-model run. A response cell ``<10`` reads "below
+10" (a value under the detection limit), and so does a ``0`` when the response has a ``detection_limit``:
+such values are censored observations too, not numbers. Every problem is refused with one line naming
+the file, the row (line number and run id)
 and the column. The file is only ever appended to or rewritten atomically (temporary file, fsync, rename):
 a command that fails leaves it byte-identical.
 """
@@ -31,6 +34,11 @@ from windowfinder.inputs.storage import read_bytes, readable_file, write_atomic
 STATUSES = ("done", "planned", "failed")
 BLOCK = "block"
 FAILED_LIMIT = "failed_limit"
+
+
+def below_column(name: str) -> str:
+    """Frame column holding, per run, the bound a censored value of response ``name`` lies below."""
+    return f"<{name}"
 # A setting more than this many factor ranges outside low..high is taken for a typo, not an old run from a
 # wider range (common practice, no source).
 FAR_OUTSIDE = 10.0
@@ -99,6 +107,12 @@ class RunTable:
             return None
         return frame[BLOCK].fillna("").astype(str).to_numpy()
 
+    def below(self, name: str, frame: pd.DataFrame | None = None) -> np.ndarray:
+        """Per run, the bound response ``name`` is known to lie below (``<10`` cells); NaN elsewhere."""
+        frame = self.frame if frame is None else frame
+        col = below_column(name)
+        return frame[col].to_numpy(dtype=float) if col in frame.columns else np.full(len(frame), np.nan)
+
     def X(self, frame: pd.DataFrame | None = None) -> np.ndarray:
         frame = self.frame if frame is None else frame
         return frame[self.spec.factor_names].to_numpy(dtype=float)
@@ -130,6 +144,8 @@ def empty_table(spec: StudySpec) -> pd.DataFrame:
     df["status"] = df["status"].astype(str)
     df[BLOCK] = df[BLOCK].astype(str)
     df[FAILED_LIMIT] = df[FAILED_LIMIT].astype(str)
+    for r in spec.response_names:
+        df[below_column(r)] = pd.Series(dtype=float)
     df["note"] = df["note"].astype(str)
     return df
 
@@ -224,6 +240,24 @@ def row_cells(cells, n_columns: int, run_column: int, name: str, line: int, empt
     return cells, run, f"{name} line {line} (run {run})"
 
 
+def _measured(cell: str, where: str, response) -> tuple[float, float]:
+    """``(value, below)`` of a response cell: ``(v, nan)`` measured, ``(nan, c)`` for ``<c`` (or for 0
+    when the response has a detection limit ``c``), ``(nan, nan)`` blank."""
+    s = cell.strip()
+    if s.startswith("<"):
+        c = _number(s[1:], where, response.name, allow_blank=False)
+        floor = response.bounds[0] if response.bounds else (0.0 if response.transform == "log" else None)
+        if floor is not None and c <= floor:
+            raise InputError(f"{where}: '{response.name}' = '{s}': a value below {c:g} cannot be modelled "
+                             f"with transform = '{response.transform}' (nothing lies below {floor:g}); write "
+                             "the detection limit, e.g. <0.5")
+        return math.nan, c
+    v = _number(s, where, response.name, allow_blank=True)
+    if response.detection_limit is not None and v == 0:
+        return math.nan, float(response.detection_limit)
+    return v, math.nan
+
+
 def read_runs(path, spec: StudySpec) -> RunTable:
     """Read and validate a run table (CSV, or XLSX when openpyxl is installed)."""
     path = Path(path)
@@ -273,11 +307,12 @@ def read_runs(path, spec: StudySpec) -> RunTable:
                 raise InputError(f"{where}: '{f.name}' = {v:g} lies far outside the study range "
                                  f"{f.low:g} .. {f.high:g} (more than {FAR_OUTSIDE:g} times its width); "
                                  "check the cell or widen low/high in study.toml")
-        for r in spec.response_names:
-            rec[r] = _number(cells[col[r]], where, r, allow_blank=True) if r in col else math.nan
+        for r in spec.responses:
+            rec[r.name], rec[below_column(r.name)] = _measured(cells[col[r.name]] if r.name in col else "",
+                                                               where, r)
         records.append(rec)
         lines_of.append(line)
-    frame = pd.DataFrame.from_records(records, columns=known)
+    frame = pd.DataFrame.from_records(records, columns=known + [below_column(r) for r in spec.response_names])
     if frame.empty:
         frame = empty_table(spec)
     table = RunTable(frame, spec, path, warnings)
@@ -452,5 +487,11 @@ def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
         header.insert(-1, BLOCK)   # only when used, so tables without blocks stay as they were
     if FAILED_LIMIT in frame.columns and (frame[FAILED_LIMIT].fillna("").astype(str) != "").any():
         header.insert(-1, FAILED_LIMIT)   # only when used, so tables without it stay as they were
+    frame = frame.copy()
+    for r in spec.response_names:   # censored values are written back as "<bound"
+        below = frame[below_column(r)].to_numpy(dtype=float) if below_column(r) in frame.columns else None
+        if below is not None and np.isfinite(below).any():
+            frame[r] = frame[r].astype(object)
+            frame.loc[np.isfinite(below), r] = [f"<{plain_cell(v)}" for v in below[np.isfinite(below)]]
     text = format_header(header) + format_rows(frame, header)
     write_atomic(path, text)

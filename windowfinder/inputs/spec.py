@@ -28,7 +28,8 @@ MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.
 
 STUDY_KEYS = ("name", "confidence", "seed", "description")
 FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
-RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds", "model")
+RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds", "model",
+                 "detection_limit")
 CONSTRAINT_KEYS = ("name", "terms", "min", "max")
 TOP_KEYS = ("study", "factor", "response", "constraint")
 # Largest magnitude accepted for a number in the study file: far beyond any physical quantity in sensible
@@ -104,6 +105,7 @@ class Response:
     transform: str = "none"
     bounds: tuple[float, float] | None = None
     model: str = "auto"
+    detection_limit: float | None = None   # a 0 in runs.csv then reads "below this value" (censored)
 
     @property
     def has_limits(self) -> bool:
@@ -453,5 +455,13 @@ class _Parser:
                     self.fail(where, f"{key} = {v:g} lies outside bounds {list(bounds)}")
         if target is not None and ((lo is not None and target < lo) or (hi is not None and target > hi)):
             self.fail(where, f"target = {target:g} lies outside the limits")
+        dl = self.number(t, "detection_limit", where)
+        floor = bounds[0] if bounds else (0.0 if transform == "log" else None)
+        if dl is not None and (dl <= 0 if floor is None else dl <= floor):
+            self.fail(where, f"detection_limit = {dl:g} must be above {0 if floor is None else floor:g} (a 0 "
+                      "in runs.csv then means 'below the detection limit')")
+        if dl is not None and bounds is not None and dl > bounds[1]:
+            self.fail(where, f"detection_limit = {dl:g} lies outside bounds {list(bounds)}")
         return Response(name=name, unit=self.text(t, "unit", where), goal=goal, min=lo, max=hi,
-                        target=target, kind=kind, transform=transform, bounds=bounds, model=model)
+                        target=target, kind=kind, transform=transform, bounds=bounds, model=model,
+                        detection_limit=dl)

@@ -26,15 +26,29 @@ SIDES = ("above", "below")
 ITERATIONS = 3   # refits after the first; Schmee & Hahn report convergence in a few (common practice)
 
 
+def _sides(side, k=None):
+    """``side`` as an object array (broadcast to ``k``), every entry checked against :data:`SIDES`."""
+    s = np.asarray(side, dtype=object)
+    s = s if k is None else np.broadcast_to(s, (k,))
+    for v in set(s.ravel().tolist()):
+        if v not in SIDES:
+            raise InputError(f"censoring side '{v}' is unknown; use above or below")
+    return s
+
+
 def truncated_mean(mu, sd, bound, side):
-    """Mean of ``N(mu, sd^2)`` truncated to ``> bound`` (``side="above"``) or ``< bound``."""
+    """Mean of ``N(mu, sd^2)`` truncated to ``> bound`` (``side="above"``) or ``< bound``.
+
+    ``bound`` and ``side`` may be arrays (one per value), broadcast against ``mu``.
+    """
     mu, sd = np.asarray(mu, float), np.maximum(np.asarray(sd, float), 1e-12)
-    a = (bound - mu) / sd
-    if side == "above":
-        return mu + sd * np.exp(stats.norm.logpdf(a) - stats.norm.logsf(a))
-    if side == "below":
-        return mu - sd * np.exp(stats.norm.logpdf(a) - stats.norm.logcdf(a))
-    raise InputError(f"censoring side '{side}' is unknown; use above or below")
+    side = _sides(side)
+    a = (np.asarray(bound, float) - mu) / sd
+    with np.errstate(over="ignore", invalid="ignore"):   # the side not taken may overflow
+        above = mu + sd * np.exp(stats.norm.logpdf(a) - stats.norm.logsf(a))
+        below = mu - sd * np.exp(stats.norm.logpdf(a) - stats.norm.logcdf(a))
+    out = np.where(side == "above", above, below)
+    return out if out.ndim else float(out)
 
 
 def fit_censored(model, X, y, X_cens, bound, side, iterations=ITERATIONS):
@@ -47,9 +61,9 @@ def fit_censored(model, X, y, X_cens, bound, side, iterations=ITERATIONS):
         Measured runs, natural units.
     X_cens : ndarray (k, d)
         Runs whose response is only known to be ``side`` of ``bound``.
-    bound : float
-        Natural units (the limit that was broken).
-    side : {"above", "below"}
+    bound : float or ndarray (k,)
+        Natural units (the limit that was broken, or each value's detection limit).
+    side : {"above", "below"} or array (k,) of them
 
     Returns
     -------
@@ -58,9 +72,10 @@ def fit_censored(model, X, y, X_cens, bound, side, iterations=ITERATIONS):
         ``(X_cens, imputed natural values)`` and ``note_`` says how many runs were censored.
     """
     X, y, X_cens = np.asarray(X, float), np.asarray(y, float).ravel(), np.asarray(X_cens, float)
-    if side not in SIDES:
-        raise InputError(f"censoring side '{side}' is unknown; use above or below")
     k = X_cens.shape[0]
+    one = np.ndim(bound) == 0 and isinstance(side, str)   # one broken limit (failed runs)
+    sides = _sides(side, k)
+    bounds = np.broadcast_to(np.asarray(bound, float), (k,)).copy()
     if k == 0:
         return model.fit(X, y)
     if len(y) >= 3:
@@ -68,20 +83,24 @@ def fit_censored(model, X, y, X_cens, bound, side, iterations=ITERATIONS):
         tr = model.transform_
     else:   # too few measurements to model: start from the limit itself, just beyond it
         tr = None
-    values = np.full(k, float(bound))
+    values = bounds.copy()
     for _ in range(iterations + (tr is None)):
         if tr is not None:
             with np.errstate(divide="ignore", invalid="ignore"):
-                z_bound = float(tr.forward(np.array([bound]))[0])
-            if not np.isfinite(z_bound):
-                raise InputError(f"a failed run names a limit at {bound:g}, where the response's transform "
+                z_bound = tr.forward(bounds)
+            if not np.isfinite(z_bound).all():
+                at = bounds[~np.isfinite(z_bound)][0]
+                raise InputError(f"a failed run names a limit at {at:g}, where the response's transform "
                                  "is undefined; use transform = 'none' or move the limit inside the bounds")
             mu, sd = model.predict(X_cens, return_std=True, noise=True)
-            values = tr.inverse(truncated_mean(mu, sd, z_bound, side))
+            values = tr.inverse(truncated_mean(mu, sd, z_bound, sides))
         model.fit(np.vstack([X, X_cens]), np.concatenate([y, values]))
         tr = model.transform_
     model.censored_ = (X_cens, values)
-    note = (f"{k} failed run(s) past the limit {bound:g} enter as censored values (imputed "
+    what = (f"{k} failed run(s) past the limit {float(bound):g}" if one else
+            f"{k} value(s) known only to lie beyond a bound ({int((sides == 'below').sum())} below, "
+            f"{int((sides == 'above').sum())} above)")
+    note = (f"{what} enter as censored values (imputed "
             f"{', '.join(f'{v:.4g}' for v in values[:5])}{' ...' if k > 5 else ''})")
     model.note_ = f"{model.note_}; {note}" if getattr(model, "note_", "") else note
     return model

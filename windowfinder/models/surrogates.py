@@ -66,9 +66,10 @@ class Surrogates:
         blocks : array (n,) or None
             Block label of each run (day, lot, operator); with two or more blocks each GP response model
             carries a random offset per block (:func:`windowfinder.models.blocks.fit_blocked`).
-        censored : dict[str, (bool ndarray (n,), float, str)] or None
+        censored : dict[str, (bool ndarray (n,), float or ndarray, str or ndarray)] or None
             Per response: the runs whose value is only known to lie ``"above"`` or ``"below"`` a bound
-            (failed runs that broke that limit), the bound and the side; they enter that response's model
+            (failed runs that broke that limit, values below a detection limit), the bound and the side
+            (one each, or one per censored run); they enter that response's model
             as censored values (:func:`windowfinder.models.censored.fit_censored`) and should be passed
             with ``works`` True, since the limit explains them.
         """
