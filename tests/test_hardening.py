@@ -73,9 +73,9 @@ def _csv_header(path: Path) -> list[str]:
 
 def _allowed(name: str) -> bool:
     """The policy the issue asks for, stated independently of the implementation."""
-    n = name.strip()
+    n = name
     low = n.lower()
-    return bool(n) and n.isprintable() and len(n) <= 80 and not n.startswith(("=", "+", "-", "@")) \
+    return bool(n) and n == n.strip() and n.isprintable() and len(n) <= 80 and not n.startswith(("=", "+", "-", "@")) \
         and low not in RESERVED and not low.endswith(RESERVED_SUFFIXES)
 
 
@@ -86,7 +86,7 @@ safe_names = st.lists(st.sampled_from(SAFE_PARTS), min_size=1, max_size=4).map(l
 odd_names = st.lists(st.sampled_from(ODD_PARTS), min_size=1, max_size=4).map("".join)
 # mostly names that should pass (to exercise every writer), some that should be refused
 names = st.one_of(safe_names, safe_names, safe_names, odd_names)
-three_names = st.lists(names, min_size=3, max_size=3, unique_by=str.strip)
+three_names = st.lists(names, min_size=3, max_size=3, unique=True)
 
 
 def _completes(cwd: Path, fa: str, fb: str, resp: str, capsys, tradeoff: bool = False) -> None:
@@ -97,13 +97,12 @@ def _completes(cwd: Path, fa: str, fb: str, resp: str, capsys, tradeoff: bool = 
                                   encoding="utf-8")
     code = main(["check", str(d)])
     err = capsys.readouterr().err
-    ok = all(_allowed(n) for n in (fa, fb, resp)) and len({n.strip() for n in (fa, fb, resp)}) == 3
+    ok = all(_allowed(n) for n in (fa, fb, resp)) and len({fa, fb, resp}) == 3
     if code != 0:
         assert code == 2 and not ok, err
         assert err.count("\n") == 1 and "study.toml" in err  # one line naming the file
         return
     assert ok, f"accepted a name the policy refuses: {(fa, fb, resp)!r}"
-    fa, fb, resp = fa.strip(), fb.strip(), resp.strip()
     assert main(["design", str(d), "--method", "sobol", "--runs", "8"]) == 0
     study = Study.load(d)  # simulate: a smooth made-up response, for the pipeline only
     fr = study.runs.planned()
@@ -149,7 +148,8 @@ def test_names_with_commas_quotes_tex_and_html_round_trip(tmp_path, names_, caps
 
 @pytest.mark.parametrize("bad,why", [("a\nb", "control character"), ("=HYPERLINK(1)", "formula"),
                                      ("gain", "reserved"), ("point", "reserved"), ("temp_pred", "_pred"),
-                                     ("Status", "reserved"), ("-x", "formula")])
+                                     ("Status", "reserved"), ("-x", "formula"), (" lead", "space"),
+                                     ("trail ", "space")])
 def test_unsafe_names_refused_at_check_with_one_line(tmp_path, bad, why, capsys):
     d = tmp_path / "s"
     d.mkdir()
@@ -395,3 +395,25 @@ def test_window_markdown_escapes_names():
         # CommonMark 0.30 §2.4: a backslash before ASCII punctuation is that character; entities decode
         # as HTML entities (html.unescape of the standard library)
         assert html.unescape(re.sub(r"\\([!-/:-@\[-`{-~])", r"\1", out)) == text
+
+
+@pytest.mark.parametrize("extra", [["--confidence", "1.5"], ["--confidence", "nan"]])
+def test_bad_confidence_refused_before_any_fit(tmp_path, extra, capsys):
+    """Option errors are one line, before the model step prints anything (new-user trial finding)."""
+    d = tmp_path / "s"
+    d.mkdir()
+    (d / "study.toml").write_text(_study_text("a", "b", "y"), encoding="utf-8")
+    assert main(["window", str(d), *extra]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "--confidence" in err and "searching" not in err
+
+
+def test_out_as_a_file_refused_before_any_fit(tmp_path, capsys):
+    d = tmp_path / "s"
+    d.mkdir()
+    (d / "study.toml").write_text(_study_text("a", "b", "y"), encoding="utf-8")
+    (d / "out").write_text("not a folder")
+    assert main(["window", str(d)]) == 2
+    err = capsys.readouterr().err
+    assert err.count("\n") == 1 and "not a folder" in err
+    assert (d / "out").read_text() == "not a folder"

@@ -28,9 +28,17 @@ def _out(study, name: str) -> Path:
 
 
 def _load(args):
+    """The study, with the options that need no model checked first (no fit is wasted on a typo)."""
     from windowfinder.study import Study
 
-    return Study.load(args.study_dir)
+    study = Study.load(args.study_dir)
+    c = getattr(args, "confidence", None)
+    if c is not None and not (math.isfinite(c) and 0.0 < c < 1.0):
+        raise InputError(f"--confidence {c:g}: must lie strictly between 0 and 1, e.g. 0.95")
+    if getattr(args, "fn", None) in _WRITES_OUT and study.out.exists() and not study.out.is_dir():
+        raise InputError(f"{study.out}: exists but is not a folder; move it away so the output folder can "
+                         "be created")
+    return study
 
 
 def _warn(lines):
@@ -316,6 +324,10 @@ def cmd_record(args):
           f"{study.runs_path}")
     left = len(study.runs.planned())
     print(f"{left} runs still planned" + ("" if left else f"; next: 'windowfinder fit {args.study_dir}'"))
+
+
+# verbs that write under out/: a file in its place is refused before any model is fitted
+_WRITES_OUT = (cmd_design, cmd_fit, cmd_window, cmd_tradeoff, cmd_suggest, cmd_report, cmd_testplan, cmd_verify)
 
 
 # -- parser ----------------------------------------------------------------------------------------

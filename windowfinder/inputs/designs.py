@@ -248,8 +248,10 @@ def design_size(method: str, d: int, runs: int | None = None, centre: int = 0, l
     if runs is not None and method not in ("space-filling", "sobol") and size != runs:
         raise InputError(f"{method} with {d} factors has {size} runs, not {runs}; leave runs unset")
     if size + centre > MAX_RUNS:
+        advice = ("ask for fewer runs" if method in ("space-filling", "sobol")
+                  else "use space-filling or sobol with a chosen number of runs")
         raise InputError(f"{method} with {d} factors needs {size + centre} runs, above the limit of {MAX_RUNS}; "
-                         "use space-filling or sobol with a chosen number of runs")
+                         + advice)
     return size + centre
 
 

@@ -5,6 +5,8 @@ tradeoff.csv, testplan.csv, verification.csv), a key in window.json, a cell of w
 report. So that every accepted name round-trips through all of them, a name must be
 
 * printable on one line: no newline, tab or other control or format character (``str.isprintable``);
+* without leading or trailing spaces: CSV readers and spreadsheets commonly trim them, so such a name
+  would not come back as written;
 * free of a leading ``= + - @``: a spreadsheet would take such a header for a formula
   (OWASP "CSV Injection"); the tables would have to alter it;
 * not one of the columns the tool adds (:data:`RESERVED`), nor end with a suffix the tool appends to a
@@ -32,6 +34,9 @@ def name_problem(name: str) -> str | None:
         bad = next(c for c in name if not c.isprintable())
         return (f"name {name!r} holds the control character {bad!r} (U+{ord(bad):04X}); names must be "
                 "printable text on one line")
+    if name != name.strip():
+        return (f"name {name!r} begins or ends with a space, which tables and spreadsheets trim; remove "
+                "the space")
     if len(name) > MAX_NAME:
         return f"name {name[:20]!r}... is {len(name)} characters long; keep names to {MAX_NAME}"
     if name.startswith(FORMULA_START):

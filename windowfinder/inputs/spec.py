@@ -303,8 +303,8 @@ class _Parser:
     def name(self, table, where):
         if "name" not in table:
             self.fail(where, "missing key 'name'; every factor and response needs a name")
-        n = self.text(table, "name", where).strip()
-        if not n:
+        n = self.text(table, "name", where)
+        if not n.strip():
             self.fail(where, "'name' is empty")
         problem = name_problem(n)
         if problem:
