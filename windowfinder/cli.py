@@ -163,7 +163,9 @@ def _print_cautions(cautions, safety: bool):
 def cmd_window(args):
     from windowfinder.answers.results import build_window, feasibility_of
     from windowfinder.answers.windowchange import previous_note
-    from windowfinder.export.files import window_table, write_window
+    from windowfinder.export.files import window_document, window_table, write_window
+    from windowfinder.export.provenance import provenance
+    from windowfinder.export.record import compare, of_record, record_block
 
     study = _load(args)
     sp = _set_point(args.set_point, study.spec)
@@ -173,7 +175,14 @@ def cmd_window(args):
     win = build_window(study.spec, fit, args.confidence, set_point=sp, mean_only=args.mean)
     change = previous_note(study.spec, feasibility_of(study.spec, fit, args.mean),
                            _out(study, "window.json"), win, study.runs.done())
-    paths = write_window(_out(study, ""), win, study.spec.name)
+    prov = provenance(study, win.confidence, args.mean, fit)
+    entry = of_record(study.out)
+    cmp = None if entry is None else compare(entry, window_document(win, prov), study.spec)
+    record = record_block(entry, window_document(win, prov), study.spec)
+    paths = write_window(_out(study, ""), win, study.spec.name, prov, record)
+    if entry is not None:
+        print(f"window of record (verified {entry['verified_utc']}): {entry['verdict']}")
+        print(cmp.text())
     print(window_table(win))
     if change:
         print(f"since the last window: {change}")
@@ -188,6 +197,7 @@ def cmd_window(args):
 def cmd_tradeoff(args):
     from windowfinder.answers.results import build_tradeoff
     from windowfinder.export.files import write_csv
+    from windowfinder.export.provenance import provenance, write_sidecar
 
     study = _load(args)
     fit = study.fit()
@@ -195,6 +205,7 @@ def cmd_tradeoff(args):
     print("searching the trade-off front ...", file=sys.stderr)
     tr = build_tradeoff(study.spec, fit, args.confidence, mean_only=args.mean, pick=args.pick)
     path = write_csv(_out(study, "tradeoff.csv"), tr.frame)
+    write_sidecar(path, provenance(study, tr.confidence, args.mean, fit))
     print(tr.message)
     pick = tr.pick
     if pick is not None:
@@ -211,6 +222,7 @@ def cmd_tradeoff(args):
 
 def cmd_suggest(args):
     from windowfinder.export.files import write_csv
+    from windowfinder.export.provenance import provenance, write_sidecar
 
     study = _load(args)
     if args.count < 1:
@@ -220,6 +232,7 @@ def cmd_suggest(args):
     print("choosing the next runs ...", file=sys.stderr)
     nxt = study.suggest(args.count, aim=args.aim, fit=fit, confidence=args.confidence)
     path = write_csv(_out(study, "next.csv"), nxt.frame)
+    write_sidecar(path, provenance(study, args.confidence, False, fit))  # before the runs are appended
     study.add_runs(nxt.planned_rows(study.spec))
     cols = ["run", *study.spec.factor_names, "aim", "gain", "p_joint"]
     print(nxt.frame[cols].to_string(index=False, float_format=lambda v: f"{v:.4g}"))
@@ -279,7 +292,9 @@ def cmd_report(args):
 
 def cmd_testplan(args):
     from windowfinder.answers.results import build_window
-    from windowfinder.export.files import write_csv
+    from windowfinder.export.files import window_document, write_csv, write_json
+    from windowfinder.export.provenance import provenance, write_sidecar
+    from windowfinder.export.record import PLAN_WINDOW_FILE
     from windowfinder.answers.testplan import build_testplan
 
     study = _load(args)
@@ -291,6 +306,9 @@ def cmd_testplan(args):
         return
     plan = build_testplan(study.spec, fit, win, study.runs.frame["run"], runs=args.runs)
     path = write_csv(_out(study, "testplan.csv"), plan.frame)
+    prov = provenance(study, win.confidence, win.mean_only, fit)
+    write_sidecar(path, prov)
+    write_json(_out(study, PLAN_WINDOW_FILE), window_document(win, prov))
     print(plan.message)
     print(plan.frame[["run", "point", *study.spec.factor_names]].to_string(index=False))
     _print_cautions(win.cautions[:1], study.spec.has_safety)
@@ -300,6 +318,7 @@ def cmd_testplan(args):
 
 def cmd_verify(args):
     from windowfinder.export.files import write_csv
+    from windowfinder.export.record import PLAN_WINDOW_FILE, RECORD_FILE
     from windowfinder.answers.testplan import read_filled_plan, verify_plan
 
     study = _load(args)
@@ -311,8 +330,14 @@ def cmd_verify(args):
         print(f"{c['run']:<6} {c['response']:<16} {c['measured']:>10.4g}  "
               f"[{c['lo95']:.4g}, {c['hi95']:.4g}]  {flag}")
     path = write_csv(_out(study, "verification.csv"), ver.frame)
-    study.add_runs(ver.results)
+    entry = study.record_verification(ver, args.file)
     print(ver.verdict)
+    if entry["window"] is None:
+        print(f"note: no {PLAN_WINDOW_FILE} beside the plan or in out/, so no window was recorded; the "
+              "verdict is in record.json and verification.csv")
+    elif entry["confirmed"]:
+        print(f"window of record: the verified window, frozen in {study.out / RECORD_FILE}; later refits "
+              "are shown beside it")
     print(f"written: {path}; {len(ver.results)} runs appended to {study.runs_path}")
 
 
@@ -324,6 +349,32 @@ def cmd_record(args):
           f"{study.runs_path}")
     left = len(study.runs.planned())
     print(f"{left} runs still planned" + ("" if left else f"; next: 'windowfinder fit {args.study_dir}'"))
+
+
+def cmd_verified(args):
+    from windowfinder.export.record import RECORD_FILE, read_record
+
+    study = _load(args)
+    rec = read_record(study.out)
+    if rec is None:
+        print(f"no window of record: nothing verified yet ('windowfinder testplan {args.study_dir}', run "
+              f"the plan, then 'windowfinder verify {args.study_dir} FILE')")
+        return
+    entry = rec["of_record"]
+    if entry is None:
+        print("no window of record: no verification confirmed a window yet")
+    else:
+        w = entry["window"]
+        print(f"window of record, verified {entry['verified_utc']} with {entry['runs']} runs "
+              f"(plan {entry['plan']}, sha256 {entry['plan_sha256'][:12]}...): {entry['verdict']}")
+        for f in w["factors"]:
+            print(f"  {f['name']:<16} {f['low']:.5g} .. {f['high']:.5g} {f['unit']}")
+        print(f"  confidence {w['confidence']:g} for {w['provenance']['confidence_applies_to']}; "
+              f"lowest P(all limits met) inside {w['min_probability']:.3f}")
+    last = rec["history"][-1]
+    if last is not entry and last != entry:
+        print(f"latest verification ({last['verified_utc']}): {last['verdict']}")
+    print(f"{len(rec['history'])} verification(s) in {study.out / RECORD_FILE}")
 
 
 # verbs that write under out/: a file in its place is refused before any model is fitted
@@ -399,6 +450,7 @@ def build_parser() -> argparse.ArgumentParser:
                    "(optional status: done or failed, note)")
     s.add_argument("--replace", action="store_true",
                    help="allow overwriting a value or status already recorded in runs.csv")
+    verb("verified", cmd_verified, "show the window of record (the last verified window) and its verdict")
     return p
 
 

@@ -20,3 +20,20 @@ class InputError(Exception):
     @property
     def message(self) -> str:
         return str(self)
+
+
+# A suggestion is offered only for a near miss: difflib's similarity ratio 2M/T of at least 0.75 keeps
+# one-letter slips and swaps of words of four letters or more ("tolerence", "uint", "nmae") and drops
+# chance overlaps ("type" and "step" score 0.5). Common practice, no source.
+CLOSE_MATCH = 0.75
+
+
+def nearest(word: str, valid, label: str = "valid keys") -> str:
+    """Hint for an unknown ``word``: "did you mean 'x'?" for a close match, else the valid choices."""
+    import difflib
+
+    valid = [str(v) for v in valid]
+    close = difflib.get_close_matches(str(word), valid, n=1, cutoff=CLOSE_MATCH)
+    if close:
+        return f"did you mean '{close[0]}'? ({label}: {', '.join(valid)})"
+    return f"{label}: {', '.join(valid)}"

@@ -303,6 +303,30 @@ class Study:
         self.runs = read_runs(self.runs_path, self.spec)
         return rec
 
+    def record_verification(self, verification, plan_path) -> dict:
+        """Record a verdict in out/record.json, then append the verification runs to the run table.
+
+        The entry holds the verdict, the UTC time, the filled plan's SHA-256 and the window the plan was
+        drawn in (``testplan.window.json``); a confirmed entry becomes the window of record
+        (:mod:`windowfinder.export.record`). Its provenance hashes the inputs as they were before the
+        runs are appended.
+        """
+        from windowfinder.export.provenance import MEANING_MEAN, provenance, sha256_of, utc_now
+        from windowfinder.export.record import add_entry, read_plan_window
+
+        win = read_plan_window(plan_path, self.out)
+        prov = (win or {}).get("provenance", {})
+        entry = {"confirmed": bool(verification.confirmed), "verdict": verification.verdict,
+                 "verified_utc": utc_now(), "plan": Path(plan_path).name,
+                 "plan_sha256": sha256_of(plan_path), "runs": int(len(verification.results)),
+                 "window": win,
+                 "provenance": provenance(self, prov.get("confidence"),
+                                          prov.get("confidence_applies_to") == MEANING_MEAN)}
+        self.add_runs(verification.results)  # validates first: a refused append records nothing
+        self.out.mkdir(parents=True, exist_ok=True)
+        add_entry(self.out, entry)
+        return entry
+
     # -- models ----------------------------------------------------------------------------------
     def training_data(self):
         """Coded settings of completed runs, measured responses (NaN = not measured), works flags."""

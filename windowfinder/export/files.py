@@ -126,13 +126,30 @@ def window_markdown(win, study_name: str) -> str:
     return "\n".join(out) + "\n"
 
 
-def write_window(out_dir, win, study_name: str) -> list[Path]:
-    out_dir = ensure_folder(out_dir)
+# Per-run leave-one-out arrays stay in fit.json; a window carries only each model's summary.
+MODEL_SUMMARY = ("response", "model", "n", "loo_q2", "loo_rmse", "coverage95", "noise_sd")
+
+
+def window_document(win, provenance: dict | None = None, record: dict | None = None) -> dict:
+    """The content of window.json (validates against ``window.schema.json``)."""
     data = win.to_dict()
+    diags = data.pop("diagnostics")
     data = {"found": data.pop("found"), "confidence": data.pop("confidence"),
             "min_probability": data.pop("min_probability"), "factors": data.pop("factors"),
-            "predicted": data.pop("predicted"), "cautions": data.pop("cautions"), **data}
-    p1 = write_json(out_dir / "window.json", data)
+            "predicted": data.pop("predicted"), "cautions": data.pop("cautions"), **data,
+            "models": [{k: d.get(k) for k in MODEL_SUMMARY} for d in diags]}
+    if provenance is not None:
+        data["provenance"] = provenance
+    if record is not None:
+        data["record"] = record
+    return _clean(data)
+
+
+def write_window(out_dir, win, study_name: str, provenance: dict | None = None,
+                 record: dict | None = None) -> list[Path]:
+    """window.json (with ``provenance`` and, when a verified window exists, ``record``) and window.md."""
+    out_dir = ensure_folder(out_dir)
+    p1 = write_json(out_dir / "window.json", window_document(win, provenance, record))
     p2 = out_dir / "window.md"
     write_atomic(p2, window_markdown(win, study_name))
     return [p1, p2]

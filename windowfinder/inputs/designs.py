@@ -10,7 +10,6 @@ Classical designs are built in the usual ``-1 .. +1`` units and mapped by ``x_co
 
 from __future__ import annotations
 
-import difflib
 import inspect
 import itertools
 import math
@@ -19,7 +18,7 @@ import numpy as np
 from scipy.spatial.distance import pdist
 from scipy.stats import qmc
 
-from windowfinder.errors import InputError
+from windowfinder.errors import InputError, nearest
 
 METHODS = ("space-filling", "sobol", "full-factorial", "ccd", "ccd-inscribed", "ccd-circumscribed",
            "box-behnken", "ofat")
@@ -204,9 +203,7 @@ def maximin_subset(C: np.ndarray, n: int) -> np.ndarray:
 def _method(method: str) -> str:
     key = str(method).strip().lower().replace("_", "-")
     if key not in METHODS:
-        near = difflib.get_close_matches(key, METHODS, n=1, cutoff=0.0)
-        raise InputError(f"design method '{method}' is unknown; did you mean '{near[0]}'? "
-                         f"Choose one of: {', '.join(METHODS)}")
+        raise InputError(f"design method '{method}' is unknown; {nearest(key, METHODS, 'choose from')}")
     return key
 
 

@@ -17,7 +17,6 @@ a command that fails leaves it byte-identical.
 from __future__ import annotations
 
 import csv
-import difflib
 import io
 import math
 import re
@@ -27,7 +26,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 
-from windowfinder.errors import InputError
+from windowfinder.errors import InputError, nearest
 from windowfinder.inputs.spec import MAX_MAGNITUDE, StudySpec
 from windowfinder.inputs.storage import read_bytes, readable_file, write_atomic
 
@@ -274,8 +273,7 @@ def read_runs(path, spec: StudySpec) -> RunTable:
     known = ["run", *spec.factor_names, *spec.response_names, "status", BLOCK, FAILED_LIMIT, "note"]
     for c in header:
         if c not in known:
-            close = difflib.get_close_matches(c, known, n=1, cutoff=0.5)
-            hint = f"did you mean '{close[0]}'?" if close else "allowed: " + ", ".join(known)
+            hint = nearest(c, known, "allowed")
             raise InputError(f"{name}: unknown column '{c}'; {hint} (put remarks in 'note')")
     for c in ["run", *spec.factor_names]:
         if c not in header:

@@ -8,7 +8,6 @@ units (``[0, 1]`` per factor), in which every model and search works.
 
 from __future__ import annotations
 
-import difflib
 import math
 import tomllib
 from dataclasses import asdict, dataclass, field
@@ -16,7 +15,7 @@ from pathlib import Path
 
 import numpy as np
 
-from windowfinder.errors import InputError
+from windowfinder.errors import InputError, nearest
 from windowfinder.inputs.constraints import Constraint, LinearConstraints, bounded_margin, box_range
 from windowfinder.inputs.names import name_problem
 from windowfinder.inputs.storage import read_bytes, readable_file
@@ -49,10 +48,7 @@ def _short(v, n: int = 60) -> str:
 
 
 def _nearest(key: str, valid) -> str:
-    close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
-    if close:
-        return f"did you mean '{close[0]}'?"
-    return "valid keys: " + ", ".join(valid)
+    return nearest(key, valid)
 
 
 @dataclass(frozen=True)
@@ -297,7 +293,7 @@ class _Parser:
             self.fail(where, f"'{key}' must be text in quotes, got {_short(v)}")
         if choices is not None and v not in choices:
             self.fail(where, f"'{key}' = {_short(v)} is not one of {', '.join(choices)}; "
-                      + _nearest(v, choices).replace("valid keys", "choose from"))
+                      + nearest(v, choices, "choose from"))
         return v
 
     def name(self, table, where):

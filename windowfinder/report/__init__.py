@@ -32,13 +32,15 @@ def _digest(path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()[:12]
 
 
-def build_html(study, fit, window=None, tradeoff=None, suggestions=None, influence=None) -> str:
+def build_html(study, fit, window=None, tradeoff=None, suggestions=None, influence=None,
+               record=None, provenance=None) -> str:
     """The report page as text (nothing computed here except figures and tables)."""
     from windowfinder.answers.results import cautions
 
     spec = study.spec
     caution_list = list(window.cautions) if window is not None else cautions(spec, fit)
-    c = sections.Content(study, fit, window, tradeoff, suggestions, influence, caution_list)
+    c = sections.Content(study, fit, window, tradeoff, suggestions, influence, caution_list, record,
+                         provenance)
     parts = [("summary", "Summary", sections.summary(c)),
              ("data", "Data", sections.data(c)),
              ("models", "Models", sections.models(c)),
@@ -80,6 +82,9 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
     influence : SobolIndices, optional
         Default :func:`windowfinder.answers.influence.model_indices` with ``influence_n`` base samples.
 
+    The page leads with the window of record (``out/record.json``, the last verified window) and its
+    verdict when there is one, with the refit beside it and the reason when they differ.
+
     Returns
     -------
     pathlib.Path
@@ -104,9 +109,14 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
                              "factor's setting in natural units")
     import matplotlib
 
+    from windowfinder.export.provenance import provenance
+    from windowfinder.export.record import of_record
+
+    prov = provenance(study, window.confidence if window is not None else None,
+                      bool(getattr(window, "mean_only", False)), fit)
     # names and units are drawn as plain text: a '$' in a name must not start TeX-like math
     with matplotlib.rc_context({"text.parse_math": False}):
-        text = build_html(study, fit, window, tradeoff, suggestions, influence)
+        text = build_html(study, fit, window, tradeoff, suggestions, influence, of_record(study.out), prov)
     path = Path(path) if path is not None else study.out / "report.html"
     write_atomic(path, text)
     return path

@@ -26,6 +26,8 @@ class Content:
     suggestions: pd.DataFrame | None = None
     influence: object = None
     cautions: list = field(default_factory=list)
+    record: dict | None = None       # entry of the window of record (export.record), if any
+    provenance: dict | None = None   # provenance of the refit (to name why it differs)
 
     @property
     def spec(self):
@@ -33,12 +35,43 @@ class Content:
 
 
 # -------------------------------------------------------------------------------------------- summary
+def of_record(c: Content) -> list[str]:
+    """The window of record and its verdict, with the refit beside it when they differ."""
+    from windowfinder.export.files import window_document
+    from windowfinder.export.record import compare
+
+    e = c.record
+    if e is None:
+        return []
+    w = e["window"]
+    out = [para(f"Window of record — verified {e['verified_utc']} with {e['runs']} verification runs "
+                f"(plan {e['plan']}, sha256 {str(e['plan_sha256'])[:12]}…). Verdict: {e['verdict']}.",
+                "headline"),
+           para(f"Confidence {w['confidence']:g} for {w['provenance']['confidence_applies_to']}; lowest "
+                f"P(all limits met) inside {w['min_probability']:.3f} when it was planned.")]
+    if c.window is None:
+        return out + [html_table(pd.DataFrame(w["factors"])[["name", "low", "high", "unit"]],
+                                 "Window of record")]
+    doc = window_document(c.window, c.provenance)
+    cmp = compare(e, doc, c.spec)
+    frame = pd.DataFrame([{"factor": r["name"], "of record: low": r["record_low"],
+                           "of record: high": r["record_high"], "refit: low": r["refit_low"],
+                           "refit: high": r["refit_high"], "unit": r["unit"],
+                           "same": "yes" if r["same"] else "no"} for r in cmp.rows])
+    out.append(html_table(frame, "Window of record beside the refit on all runs"))
+    out.append(para(cmp.reason[0].upper() + cmp.reason[1:] + "."))
+    return out
+
+
 def summary(c: Content) -> str:
     spec, win = c.spec, c.window
     out = []
     if spec.has_safety and c.cautions:
         out.append("<div class=\"caution\" role=\"note\"><p><strong>Caution — safety limit "
                    "involved.</strong></p>" + "".join(para(t) for t in c.cautions) + "</div>")
+    out += of_record(c)
+    if c.record is not None and win is not None:
+        out.append("<h3>Refit on all runs (not the window of record)</h3>")
     if win is None:
         out.append(para("No response has a limit, so there is no window to find; the trade-off below "
                         "shows the best settings for the goals.", "headline"))
