@@ -5,6 +5,7 @@ from __future__ import annotations
 import windowfinder  # noqa: F401  (first: it holds BLAS to one thread before numpy loads)
 
 import hashlib
+import json
 from pathlib import Path
 
 import pytest
@@ -65,3 +66,46 @@ def snapshot(folder: Path) -> dict:
     """Path -> sha256 of every file below ``folder`` (to prove nothing was written or lost)."""
     return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
             for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+# -- every window the suite writes validates against the shipped schema ------------------------------
+WINDOW_FILES = ("window.json", "testplan.window.json")
+WINDOWS_CHECKED = []  # (path) of every window document validated in this session
+
+
+def window_validator():
+    """Draft 2020-12 validator of the JSON Schema shipped in the package (jsonschema, a test extra)."""
+    import jsonschema
+
+    from windowfinder.export.files import window_schema
+
+    schema = window_schema()
+    jsonschema.Draft202012Validator.check_schema(schema)
+    return jsonschema.Draft202012Validator(schema)
+
+
+def check_window_document(doc: dict, where: str = "window") -> None:
+    errors = sorted(window_validator().iter_errors(doc), key=lambda e: list(e.path))
+    assert not errors, f"{where}: {errors[0].message} at {list(errors[0].path)}"
+
+
+@pytest.fixture(autouse=True)
+def _validate_written_windows(monkeypatch):
+    """Wrap the JSON writer: a window.json (or a record's window) written in-process must validate."""
+    from windowfinder.export import files
+
+    original = files.write_json
+
+    def checked(path, data):
+        out = original(path, data)
+        name = Path(path).name
+        if name in WINDOW_FILES:
+            check_window_document(json.loads(Path(out).read_text()), str(path))
+            WINDOWS_CHECKED.append(str(path))
+        elif name == "record.json":
+            for e in json.loads(Path(out).read_text())["history"]:
+                if e["window"] is not None:
+                    check_window_document(e["window"], f"{path} entry {e['verified_utc']}")
+        return out
+
+    monkeypatch.setattr(files, "write_json", checked)

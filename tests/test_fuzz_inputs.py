@@ -37,6 +37,7 @@ from windowfinder.cli import main
 from windowfinder.errors import InputError
 from windowfinder.inputs.spec import Factor, StudySpec
 from windowfinder.study import Study
+from conftest import check_window_document
 
 INPUTS = ("study.toml", "runs.csv")
 
@@ -112,6 +113,7 @@ def check_fit_json(fit: dict):
 
 
 def check_window_json(win: dict):
+    check_window_document(win)  # the shipped JSON Schema (draft 2020-12)
     assert isinstance(win["found"], bool)
     assert 0 < win["confidence"] < 1
     assert isinstance(win["min_probability"], (int, float)) and 0 <= win["min_probability"] <= 1

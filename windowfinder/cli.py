@@ -377,8 +377,36 @@ def cmd_verified(args):
     print(f"{len(rec['history'])} verification(s) in {study.out / RECORD_FILE}")
 
 
+def cmd_controlplan(args):
+    from windowfinder.export.controlplan import write_control_plan
+    from windowfinder.export.provenance import provenance, write_sidecar
+
+    study = _load(args)
+    fit = study.fit()
+    _warn(fit.warnings)
+    frame, source = study.control_plan(fit, args.confidence)
+    paths = write_control_plan(study.out, frame)
+    write_sidecar(paths[0], {**provenance(study, args.confidence, False, fit), "window": source})
+    print(f"control plan of the {source}")
+    cols = ["name", "unit", "set_point", "low", "high", "tolerance", "guard_low", "guard_high"]
+    print(frame.loc[frame["item"] == "factor", cols].to_string(index=False, float_format=lambda v: f"{v:.4g}"))
+    cols = ["name", "limit_min", "limit_max", "predicted_low", "predicted_high", "ppm_out_at_set_point",
+            "ppm_out_at_worst_point", "cpk_at_set_point", "ppk_at_set_point"]
+    print(frame.loc[frame["item"] == "response", cols].to_string(index=False, na_rep="-",
+                                                                 float_format=lambda v: f"{v:.4g}"))
+    print("note: ppm and capability come from the models' predictive distribution, not from measured "
+          "production data; confirm them with runs at scale")
+    if study.spec.has_safety:
+        from windowfinder.answers.results import CAUTION_SAFETY
+
+        print("CAUTION: " + CAUTION_SAFETY.format(names=", ".join(r.name for r in study.spec.limited
+                                                                 if r.is_safety)))
+    print("written: " + ", ".join(str(p) for p in paths))
+
+
 # verbs that write under out/: a file in its place is refused before any model is fitted
-_WRITES_OUT = (cmd_design, cmd_fit, cmd_window, cmd_tradeoff, cmd_suggest, cmd_report, cmd_testplan, cmd_verify)
+_WRITES_OUT = (cmd_design, cmd_fit, cmd_window, cmd_tradeoff, cmd_suggest, cmd_report, cmd_testplan, cmd_verify,
+               cmd_controlplan)
 
 
 # -- parser ----------------------------------------------------------------------------------------
@@ -451,6 +479,9 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--replace", action="store_true",
                    help="allow overwriting a value or status already recorded in runs.csv")
     verb("verified", cmd_verified, "show the window of record (the last verified window) and its verdict")
+    s = verb("controlplan", cmd_controlplan,
+             "write out/controlplan.csv (+ .xlsx): set points, ranges, limits, ppm out, Cpk/Ppk")
+    s.add_argument("--confidence", type=float, help="when no window is of record: default the study's")
     return p
 
 

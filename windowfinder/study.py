@@ -323,9 +323,36 @@ class Study:
                  "provenance": provenance(self, prov.get("confidence"),
                                           prov.get("confidence_applies_to") == MEANING_MEAN)}
         self.add_runs(verification.results)  # validates first: a refused append records nothing
-        self.out.mkdir(parents=True, exist_ok=True)
+        ensure_folder(self.out)
         add_entry(self.out, entry)
         return entry
+
+    def control_plan(self, fit: FitResult | None = None, confidence: float | None = None):
+        """Control-plan table of the window of record (else of the current window), with its source.
+
+        Returns ``(frame, source)``: :func:`windowfinder.export.controlplan.control_plan` with the
+        current models, and a line naming the window used. Refused when there is no window.
+        """
+        from windowfinder.answers.results import build_window
+        from windowfinder.export.controlplan import control_plan
+        from windowfinder.export.files import window_document
+        from windowfinder.export.provenance import provenance
+        from windowfinder.export.record import of_record
+
+        fit = self.fit() if fit is None else fit
+        entry = of_record(self.out)
+        if entry is not None:
+            window = entry["window"]
+            source = f"window of record, verified {entry['verified_utc']}: {entry['verdict']}"
+        else:
+            win = build_window(self.spec, fit, confidence)
+            if not win.found:
+                raise InputError(f"no window at confidence {win.confidence:g}, so no control plan: "
+                                 f"{win.message}")
+            window = window_document(win, provenance(self, win.confidence, win.mean_only, fit))
+            source = ("current window, NOT verified: run 'windowfinder testplan' and 'verify' before "
+                      "handing it on")
+        return control_plan(self.spec, fit, window), source
 
     # -- models ----------------------------------------------------------------------------------
     def training_data(self):

@@ -126,6 +126,16 @@ def window_markdown(win, study_name: str) -> str:
     return "\n".join(out) + "\n"
 
 
+SCHEMA_FILE = "window.schema.json"  # JSON Schema (draft 2020-12) of window.json, shipped as package data
+
+
+def window_schema() -> dict:
+    """The JSON Schema of window.json (draft 2020-12), as shipped in the package."""
+    from importlib.resources import files
+
+    return json.loads(files("windowfinder.export").joinpath(SCHEMA_FILE).read_text(encoding="utf-8"))
+
+
 # Per-run leave-one-out arrays stay in fit.json; a window carries only each model's summary.
 MODEL_SUMMARY = ("response", "model", "n", "loo_q2", "loo_rmse", "coverage95", "noise_sd")
 

@@ -113,8 +113,8 @@ def resolve_target(path) -> Path:
     return Path(os.path.realpath(path)) if os.path.islink(path) else path
 
 
-def write_atomic(path, text: str) -> None:
-    """Write ``text`` to ``path`` atomically: temporary file in the same folder, fsync, rename.
+def write_atomic(path, text: str | bytes) -> None:
+    """Write ``text`` (or bytes) to ``path`` atomically: temporary file in the same folder, fsync, rename.
 
     A symbolic link is written through (the rename replaces its target); the old file's permission bits
     are kept, a new file gets ``0666 & ~umask``.
@@ -132,7 +132,8 @@ def write_atomic(path, text: str) -> None:
         raise InputError(f"{target}: cannot write in {target.parent} ({_reason(e)}); check the folder's "
                          "permissions and free space") from None
     try:
-        with os.fdopen(fd, "w", encoding="utf-8", newline="") as fh:
+        binary = isinstance(text, bytes)
+        with (os.fdopen(fd, "wb") if binary else os.fdopen(fd, "w", encoding="utf-8", newline="")) as fh:
             fh.write(text)
             fh.flush()
             if owner is not None and hasattr(os, "fchown"):
