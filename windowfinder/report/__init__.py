@@ -17,8 +17,9 @@ from windowfinder.errors import InputError
 from windowfinder.inputs.storage import write_atomic
 from windowfinder.report import sections
 from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
-from windowfinder.report.maps import (SliceGrid, draw_overlays, map_figure, map_pairs, probability_map_figure, slice_centre,
-                   slice_figure, slice_grid)
+from windowfinder.report.maps import (SliceGrid, draw_overlays, map_figure, map_pairs, margin_in_sd,
+                                     margin_map_figure, probability_map_figure, slice_centre,
+                                     slice_figure, slice_grid)
 from windowfinder.report.method import method_notes
 from windowfinder.report.page import page
 
@@ -123,5 +124,5 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
 
 
 __all__ = ["SECTION_IDS", "SliceGrid", "build_html", "draw_overlays", "figure_png", "influence_figure",
-           "loo_figure", "map_figure", "map_pairs", "probability_map_figure", "slice_centre",
+           "loo_figure", "map_figure", "map_pairs", "margin_in_sd", "margin_map_figure", "probability_map_figure", "slice_centre",
            "slice_figure", "slice_grid", "tradeoff_figure", "write_report"]

@@ -1,5 +1,8 @@
-"""Maps over two factors: predicted responses with their limit lines, and the probability of meeting
-every limit with the uncertain and untrusted regions hatched.
+"""Maps over two factors: first the probability that a new run meets every limit (uncertain and
+untrusted regions hatched), then one *margin map* per limit — the predicted margin to the limit in
+units of its predictive standard deviation, ``z = (value - min) / sd`` or ``(max - value) / sd`` on the
+model's latent scale, so ``z = 2`` means about 98 % for that limit alone (normal predictive). A study
+without limits gets maps of its goals' predicted medians instead.
 
 With more than two factors each map is a 2-D slice through one point (by default the window centre);
 the other factors are held there. Axes are in natural units; the window box, its guard band and the
@@ -43,6 +46,8 @@ class SliceGrid:
         Predicted median of every response, natural units (rows = y, columns = x).
     fmap : FeasibilityMap or None
         Probabilities, classes and trust flags (None when the study has no limits).
+    margins : dict[str, ndarray (m, m)]
+        Per limited response, the margin to its nearer limit in predictive sd (latent scale).
     """
 
     pair: tuple
@@ -52,6 +57,7 @@ class SliceGrid:
     U: np.ndarray
     means: dict
     fmap: object = None
+    margins: dict = None
 
     def field(self, values) -> np.ndarray:
         """Reshape per-point values (m * m,) to the grid (m, m)."""
@@ -77,10 +83,14 @@ def slice_grid(spec, fit, pair, centre=None, m: int = GRID, confidence=None, mea
     gx, gy = np.meshgrid(g, g)
     U = np.repeat(centre[None], m * m, axis=0)
     U[:, i], U[:, j] = gx.ravel(), gy.ravel()
-    means = {}
+    means, margins = {}, {}
     for r in spec.responses:
         model = fit.surrogates.models[r.name]
-        means[r.name] = model.transform_.inverse(model.predict(U, return_std=False)).reshape(m, m)
+        mu, sd = model.predict(U, return_std=True, noise=not mean_only)
+        means[r.name] = model.transform_.inverse(mu).reshape(m, m)
+        if r.has_limits:
+            margins[r.name] = margin_in_sd(mu, sd, model.transform_.forward_limit(r.min),
+                                           model.transform_.forward_limit(r.max)).reshape(m, m)
     fmap = None
     if spec.limited:
         if feasibility is None:
@@ -89,7 +99,55 @@ def slice_grid(spec, fit, pair, centre=None, m: int = GRID, confidence=None, mea
         conf = spec.confidence if confidence is None else float(confidence)
         fmap = feasibility.evaluate(U, max(conf, 0.5 + 1e-9))
     f_i, f_j = spec.factors[i], spec.factors[j]
-    return SliceGrid((i, j), centre, f_i.to_natural(g), f_j.to_natural(g), U, means, fmap)
+    return SliceGrid((i, j), centre, f_i.to_natural(g), f_j.to_natural(g), U, means, fmap, margins)
+
+
+def margin_in_sd(mu, sd, lo=None, hi=None) -> np.ndarray:
+    """Margin to the nearer limit in predictive sd: ``min((mu - lo) / sd, (hi - mu) / sd)``.
+
+    The sign convention of every limit (margin >= 0 met); with a normal predictive
+    ``P(limit met) = Phi(z)`` for a one-sided limit, so ``z = 2`` is about 0.977.
+    """
+    mu, sd = np.asarray(mu, float), np.maximum(np.asarray(sd, float), 1e-300)
+    z = np.full(mu.shape, np.inf)
+    if lo is not None:
+        z = np.minimum(z, (mu - lo) / sd)
+    if hi is not None:
+        z = np.minimum(z, (hi - mu) / sd)
+    return z
+
+
+MARGIN_CLIP = 4.0  # margins beyond +-4 sd (P below 3e-5 or above 0.99997) share the end colours
+
+
+def margin_map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, suggestions=None,
+                      grid=None, ax=None, legend=True):
+    """Margin of one limited response to its limit, in units of its predictive sd, over two factors.
+
+    Diverging colours (purple: limit likely broken, orange: met), a solid line where the margin is
+    zero (the predicted median on the limit) and a dashed line at 2 sd; window, set point and runs
+    drawn on it. The zero line is a contour set with ``gid="margin 0"``.
+    """
+    grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
+    r = spec.response(response) if response is not None else spec.limited[0]
+    if not r.has_limits:
+        raise InputError(f"response '{r.name}' has no limit, so it has no margin to map; give it a min or max")
+    fig, ax = _axes(ax)
+    Z = np.clip(grid.margins[r.name], -MARGIN_CLIP, MARGIN_CLIP)
+    levels = np.linspace(-MARGIN_CLIP, MARGIN_CLIP, 17)
+    cf = ax.contourf(grid.xs, grid.ys, Z, levels=levels, cmap="PuOr")
+    fig.colorbar(cf, ax=ax, label="margin / predictive sd", ticks=np.arange(-4, 5, 2))
+    handles = []
+    for z, style, gid, text in ((0.0, "-", "margin 0", "median on the limit (0 sd)"),
+                                (2.0, "--", "margin 2", "2 sd margin (about 98 %)")):
+        if Z.min() < z < Z.max():
+            cs = ax.contour(grid.xs, grid.ys, Z, levels=[z], colors=BLACK, linewidths=1.0,
+                            linestyles=style, zorder=4)
+            cs.set_gid(gid)
+        handles.append(Line2D([], [], color=BLACK, lw=1.0, ls=style, label=text))
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    ax.set_title(f"{r.name}{' (safety)' if r.is_safety else ''}: margin to {r.limit_text()}", fontsize=10)
+    return _finish(fig, ax, handles, legend)
 
 
 def _check_pair(spec, pair):
@@ -273,11 +331,12 @@ def _finish(fig, ax, handles, legend):
 
 
 def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None):
-    """One row of maps for a pair: every limited response (or every goal when none is limited) and the
-    joint probability of meeting all limits."""
+    """The maps of a pair: first the probability that a new run meets every limit, then one margin map
+    per limited response (or, with no limits, the predicted median of every goal)."""
     grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
     shown = spec.limited or spec.goals or list(spec.responses)
-    panels = len(shown) + (grid.fmap is not None)
+    lead = grid.fmap is not None
+    panels = len(shown) + lead
     ncols = min(panels, 2)
     nrows = -(-panels // ncols)
     width, height = 5.8 * ncols, 4.2 * nrows + 0.7
@@ -285,11 +344,12 @@ def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=Non
     fig.subplots_adjust(left=0.75 / width, right=1 - 0.1 / width, bottom=1.15 / height,
                         top=1 - 0.3 / height, wspace=0.42, hspace=0.32)
     flat = list(axes.ravel())
-    for ax, r in zip(flat, shown):
-        map_figure(spec, fit, window, grid.pair, r.name, runs, suggestions, grid, ax=ax, legend=False)
-    if grid.fmap is not None:
-        probability_map_figure(spec, fit, window, grid.pair, runs, suggestions, grid, ax=flat[len(shown)],
+    if lead:
+        probability_map_figure(spec, fit, window, grid.pair, runs, suggestions, grid, ax=flat[0],
                                legend=False)
+    draw = margin_map_figure if spec.limited else map_figure
+    for ax, r in zip(flat[lead:], shown):
+        draw(spec, fit, window, grid.pair, r.name, runs, suggestions, grid, ax=ax, legend=False)
     for ax in flat[panels:]:
         ax.set_axis_off()
     seen = {}

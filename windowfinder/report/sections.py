@@ -226,13 +226,15 @@ def maps(c: Content) -> str:
     conf = win.confidence if win is not None else spec.confidence
     held = spec.to_natural(centre)[0]
     pairs = map_pairs(spec, c.influence)
-    out = [para("Per pair of factors: the predicted median of each limited response, with its limit as a "
-                "thick line, and (last panel) the probability that a "
+    out = [para("Per pair of factors, first the probability that a "
                 + ("run meets every limit on average (process mean)" if getattr(win, "mean_only", False)
                    else "new run meets every limit") + "; hatched //: uncertain class (between "
                 f"{1 - conf:.2g} and {conf:g}); hatched xx: untrusted (far from every run, or a model too "
-                "unsure against its limit). Box: the window as exported to window.json (dashed: widened "
-                "by the tolerance). Circles: done runs; crosses: failed runs; diamonds: suggested runs.")]
+                "unsure against its limit). Then, for each limit, its margin map: how many predictive "
+                "standard deviations the prediction stays inside the limit (orange) or beyond it (purple); "
+                "solid line: the predicted median on the limit; dashed: 2 sd, about 98 % for that limit "
+                "alone. Box: the window as exported to window.json (dashed: widened by the tolerance). "
+                "Circles: done runs; crosses: failed runs; diamonds: suggested runs.")]
     if spec.d > 2:
         out.append(para("With more than two factors each map is a slice: the factors not on the axes are "
                         "held at the " + ("window centre" if win is not None and win.found else
@@ -252,8 +254,9 @@ def maps(c: Content) -> str:
         fx, fy = spec.factors[i], spec.factors[j]
         shown = [r.name for r in (spec.limited or spec.goals or spec.responses)]
         alt = (f"Maps over {fx.name} and {fy.name}: predicted {', '.join(shown)}"
-               + (" with limit lines, and the probability of meeting all limits with hatched uncertain "
-                  "and untrusted regions" if spec.limited else "")
+               + (": the probability of meeting all limits with hatched uncertain and untrusted "
+                  "regions, then each limit's margin in predictive standard deviations" if spec.limited
+                  else "")
                + "; window box and runs marked.")
         out.append(f"<h3>{esc(fx.name)} × {esc(fy.name)}</h3>" + image(figure_png(fig), alt))
     return "\n".join(out)
