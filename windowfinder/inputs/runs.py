@@ -358,8 +358,7 @@ def _failed_limit(text: str, status: str, spec: StudySpec, where: str) -> str:
     name, _, side = (p.strip() for p in text.partition(":"))
     names = [r.name for r in spec.responses if r.has_limits]
     if name not in spec.response_names:
-        close = difflib.get_close_matches(name, names, n=1, cutoff=0.5)
-        hint = f"did you mean '{close[0]}'?" if close else "responses with limits: " + ", ".join(names)
+        hint = nearest(name, names, "responses with limits")
         raise InputError(f"{where}: {FAILED_LIMIT} '{text}' names no response of the study; {hint}")
     r = next(r for r in spec.responses if r.name == name)
     sides = [s for s, v in (("min", r.min), ("max", r.max)) if v is not None]
