@@ -125,7 +125,8 @@ def _point(spec: StudySpec, u) -> dict:
     if u is None:
         return {}
     x = spec.to_natural(np.asarray(u, dtype=float))[0]
-    return {f.name: float(v) for f, v in zip(spec.factors, x)}
+    # 12 significant digits: coded -> natural arithmetic leaves 26.000000000000004 on a step grid
+    return {f.name: float(f"{v:.12g}") for f, v in zip(spec.factors, x)}
 
 
 def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int = 256) -> list[dict]:
