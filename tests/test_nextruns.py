@@ -257,6 +257,7 @@ def test_aims_degenerate_and_frame():
     assert only_limits.aim == ["window", "window"]
     only_goals = suggest(S, [], [("b", "maximize", None)], X, 2, aim="window", n_candidates=128)
     assert only_goals.aim == ["tradeoff", "tradeoff"]
+    assert only_goals.basis == ["hypervolume gain"] * 2 and np.all(np.isnan(only_goals.edge_score))
     both = suggest(S, [("a", None, 0.1)], [("b", "maximize", None)], X, 3, n_candidates=128)
     assert both.aim[0] != both.aim[1] and both.aim[0] == both.aim[2]
     frame = both.to_frame(["t", "p"], to_natural=lambda U: 10 + 90 * U)
@@ -300,7 +301,8 @@ def test_window_rules_contract():
         assert s.X.shape == (2, 2) and np.all((s.X >= 0) & (s.X <= 1))
         if rule == "edge":
             expected = Acquisition(S, limits, [], X, seed=0).window(s.X[:1])[0][0]
-            assert s.gain[0] == pytest.approx(expected, abs=1e-12)
+            assert s.edge_score[0] == pytest.approx(expected, abs=1e-12)
+            assert s.basis == ["edge", "edge"] and np.all(np.isnan(s.gain))
     with pytest.raises(InputError, match="window rule"):
         suggest(S, [("a", None, 0.08)], [], X, 2, aim="window", window_rule="sideways")
 
@@ -316,4 +318,8 @@ def test_polynomial_models_fall_back_to_the_edge_criterion():
     s = suggest(S, limits, [], X, 2, aim="window", n_candidates=128)
     assert s.X.shape == (2, 2) and np.all((s.X >= 0) & (s.X <= 1))
     expected = Acquisition(S, limits, [], X, seed=0).window(s.X[:1])[0][0]
-    assert s.gain[0] == pytest.approx(expected, abs=1e-12)
+    assert s.edge_score[0] == pytest.approx(expected, abs=1e-12)
+    # the edge score is no window gain: next.csv says which score chose the run and leaves gain empty
+    frame = s.to_frame(["t", "p"])
+    assert list(frame["basis"]) == ["edge", "edge"] and frame["gain"].isna().all()
+    np.testing.assert_allclose(frame["edge_score"], s.edge_score)

@@ -234,7 +234,7 @@ def cmd_suggest(args):
     path = write_csv(_out(study, "next.csv"), nxt.frame)
     write_sidecar(path, provenance(study, args.confidence, False, fit))  # before the runs are appended
     study.add_runs(nxt.planned_rows(study.spec))
-    cols = ["run", *study.spec.factor_names, "aim", "gain", "p_joint"]
+    cols = ["run", *study.spec.factor_names, "aim", "basis", "gain", "edge_score", "p_joint"]
     print(nxt.frame[cols].to_string(index=False, float_format=lambda v: f"{v:.4g}"))
     print(nxt.message)
     print(f"advice: {nxt.advice}")

@@ -20,9 +20,9 @@ from __future__ import annotations
 
 # Columns the tool writes besides factor and response names, in any file (runs.csv: run, status, note,
 # block; next.csv; tradeoff.csv; testplan.csv; verification.csv).
-RESERVED = ("run", "status", "failed_limit", "note", "block", "point", "aim", "gain", "p_joint", "replicate",
-            "p_all_limits", "balanced_pick", "response", "measured", "lo95", "hi95", "inside_interval",
-            "meets_limit")
+RESERVED = ("run", "status", "failed_limit", "note", "block", "point", "aim", "basis", "gain", "edge_score",
+            "p_joint", "replicate", "p_all_limits", "balanced_pick", "response", "measured", "lo95", "hi95",
+            "inside_interval", "meets_limit")
 RESERVED_SUFFIXES = ("_pred", "_predicted", "_lo95", "_hi95")
 FORMULA_START = ("=", "+", "-", "@")
 MAX_NAME = 80  # longest name: a column header and a figure label (common practice, no source)

@@ -83,6 +83,8 @@ N_SAMPLES_MANY_GOALS = 32    # three or more goals: pymoo hypervolume per draw
 MAX_CANDIDATES_MANY_GOALS = 256
 MIN_WORKS = 0.5
 PAY_UNCERTAIN, PAY_GAIN = 0.05, 0.01
+BASES = ("window growth", "edge", "hypervolume gain", "space-filling")
+BASIS_OF_AIM = {"window": "window growth", "tradeoff": "hypervolume gain"}
 
 
 @dataclass
@@ -96,9 +98,9 @@ class Suggestions:
     aim : list of str
         ``"window"`` or ``"tradeoff"`` per run: the criterion that chose it.
     gain : ndarray (q,)
-        Score of each pick when chosen: expected window growth in coded volume (share of the factor
-        space; misclassification probability where the edge criterion was used) or
-        probability-weighted expected hypervolume improvement in goal units (trade-off).
+        Gain of each pick when chosen: expected window growth in coded volume (share of the factor
+        space) or probability-weighted expected hypervolume improvement in goal units (trade-off); NaN
+        where the edge criterion chose the pick (it measures no gain) and for space-filling runs.
     p_joint : ndarray (q,)
         Current joint probability that a run there meets every limit (and works).
     predicted : dict[str, ndarray (q,)]
@@ -109,6 +111,13 @@ class Suggestions:
         One line: what was proposed and why.
     replicate : ndarray (q,) of bool
         True where a pick repeats a completed run.
+    basis : list of str
+        The score that chose each pick (:data:`BASES`): ``"window growth"``, ``"edge"`` (no setting
+        was expected to grow the window: the misclassification criterion), ``"hypervolume gain"`` or
+        ``"space-filling"``.
+    edge_score : ndarray (q,)
+        Misclassification probability ``min(pi, 1 - pi)`` where the edge criterion chose the pick,
+        NaN elsewhere.
     """
 
     X: np.ndarray
@@ -119,18 +128,26 @@ class Suggestions:
     advice: str
     message: str
     replicate: np.ndarray = field(default=None)
+    basis: list = field(default=None)
+    edge_score: np.ndarray = field(default=None)
 
     def __post_init__(self):
         if self.replicate is None:
             self.replicate = np.zeros(len(self.X), dtype=bool)
+        if self.basis is None:
+            self.basis = [BASIS_OF_AIM.get(a, a) for a in self.aim]
+        if self.edge_score is None:
+            self.edge_score = np.full(len(self.X), np.nan)
 
     def to_frame(self, factor_names, to_natural=None) -> pd.DataFrame:
-        """One row per proposed run: settings (natural units when ``to_natural`` is given), aim, gain,
-        ``p_joint``, ``<response>_predicted`` columns and the replicate flag."""
+        """One row per proposed run: settings (natural units when ``to_natural`` is given), aim, basis,
+        gain, edge_score, ``p_joint``, ``<response>_predicted`` columns and the replicate flag."""
         X = self.X if to_natural is None else np.asarray(to_natural(self.X), dtype=float)
         frame = pd.DataFrame(X, columns=list(factor_names))
         frame["aim"] = list(self.aim)
+        frame["basis"] = list(self.basis)
         frame["gain"] = self.gain
+        frame["edge_score"] = self.edge_score
         frame["p_joint"] = self.p_joint
         for name, values in self.predicted.items():
             frame[f"{name}_predicted"] = values
@@ -142,7 +159,9 @@ class Suggestions:
         return {"X": self.X.tolist(), "aim": list(self.aim), "gain": self.gain.tolist(),
                 "p_joint": self.p_joint.tolist(),
                 "predicted": {k: np.asarray(v).tolist() for k, v in self.predicted.items()},
-                "replicate": [bool(r) for r in self.replicate], "advice": self.advice,
+                "replicate": [bool(r) for r in self.replicate], "basis": list(self.basis),
+                "edge_score": [None if np.isnan(v) else float(v) for v in self.edge_score],
+                "advice": self.advice,
                 "message": self.message}
 
 
@@ -391,6 +410,7 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
                                 (lambda C: np.ravel(works.predict_proba(C)) >= MIN_WORKS))
         nan = np.full(len(X), np.nan)
         return Suggestions(X=X, aim=["space-filling"] * len(X), gain=nan, p_joint=nan.copy(),
+                           basis=["space-filling"] * len(X),
                            predicted={n: nan.copy() for n in surrogates.models}, advice=sup.advice,
                            message=(f"{len(X)} space-filling runs proposed instead of model-guided ones: "
                                     f"{sup.reason}"))
@@ -409,7 +429,7 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
     base_window = (_gain_setup(acq, base, d, tolerance, seed, snap, window_rule == "grow") if use_gain
                    else None)
 
-    picks, gains, replicate, state = [], [], [], acq
+    picks, gains, bases, replicate, state = [], [], [], [], acq
     for a in aims:
         kind = "gain" if a == "window" and base_window is not None else a
         alternate = (len(X_runs) + aims[:len(picks)].count(a)) % 2
@@ -419,9 +439,11 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
                  else base_window)
         x, g, rep = pick(_scorer(state, kind, avoid), cands, X_runs, picks, min_distance, snap, rng)
         if kind in ("gain", "explore") and not g > 0:   # no growth expected anywhere: sharpen the edge instead
-            x, g, rep = pick(_scorer(state, "window", avoid), base, X_runs, picks, min_distance, snap, rng)
+            kind = "window"
+            x, g, rep = pick(_scorer(state, kind, avoid), base, X_runs, picks, min_distance, snap, rng)
         picks.append(np.asarray(x, dtype=float))
         gains.append(float(g))
+        bases.append("edge" if kind == "window" else BASIS_OF_AIM[a])
         replicate.append(rep)
         state = state.believe(x)
 
@@ -436,5 +458,8 @@ def suggest(surrogates, limits, goals, X_runs, count, aim="balanced", confidence
         msg += f"; run {rows} repeats a completed run (replicate: it scores far above any new setting)"
     if avoid:
         msg += "; settings likely to fail (P(works) < 0.5) avoided"
-    return Suggestions(X=X, aim=aims, gain=np.array(gains), p_joint=acq.p_joint(X), predicted=predicted,
-                       advice=_advice(acq, base, base_tradeoff), message=msg, replicate=np.array(replicate))
+    edge = np.array([b == "edge" for b in bases])
+    gains = np.array(gains)
+    return Suggestions(X=X, aim=aims, gain=np.where(edge, np.nan, gains), p_joint=acq.p_joint(X),
+                       predicted=predicted, advice=_advice(acq, base, base_tradeoff), message=msg,
+                       replicate=np.array(replicate), basis=bases, edge_score=np.where(edge, gains, np.nan))
