@@ -201,3 +201,56 @@ def test_refit_against_previous_window_json(reactor, tmp_path):
     assert previous_note(spec, feas, path, win, study.runs.done()) is None
     path.write_text("{broken")
     assert previous_note(spec, feas, path, win, study.runs.done()) is None
+
+
+# ---------------------------------------------------------------- guard band clipped at the bounds
+CLIP_STUDY = """\
+[study]
+name = "clip"
+seed = 1
+confidence = 0.9
+
+[[factor]]
+name = "a"
+unit = "bar"
+low = 0.0
+high = 10.0
+tolerance = 0.5
+
+[[factor]]
+name = "b"
+unit = "degC"
+low = 0.0
+high = 10.0
+tolerance = 0.5
+
+[[response]]
+name = "y"
+min = 3.0
+max = 7.0
+"""
+
+
+def test_guard_band_clipped_at_a_study_bound_is_said_in_json_and_markdown(tmp_path):
+    # closed form: y = b (noise-free) with 3 <= y <= 7 and tolerance 0.5 gives the window a in [0, 10]
+    # (y does not depend on a), b in [3.5, 6.5]; a's guard band 0 - 0.5 .. 10 + 0.5 lies past both study
+    # bounds and is clipped, b's (3 .. 7) is not
+    from windowfinder.study import Study
+
+    (tmp_path / "study.toml").write_text(CLIP_STUDY)
+    study = Study.load(tmp_path)
+    study.add_runs(study.design("space-filling", runs=16, seed=4))
+    study.record_results(pd.DataFrame({"run": study.runs.frame["run"], "status": "done",
+                                       "y": study.runs.X()[:, 1]}))
+    study = Study.load(tmp_path)
+    win = build_window(study.spec, study.fit())
+    assert win.found
+    a, b = win.factors
+    assert (a["low"], a["high"]) == (0.0, 10.0)
+    assert b["low"] == pytest.approx(3.5, abs=0.05) and b["high"] == pytest.approx(6.5, abs=0.05)
+    notes = [c for c in win.cautions if "clipped at the study bound" in c]
+    assert len(notes) == 1 and notes[0].startswith("The guard band for a is clipped")
+    assert "low 0 and high 10 bar" in notes[0] and "not asked about settings beyond it" in notes[0]
+    paths = write_window(tmp_path / "out", win, study.spec.name)   # schema-checked by conftest
+    assert notes[0] in json.loads(paths[0].read_text())["cautions"]
+    assert "The guard band for a is clipped at the study bound" in paths[1].read_text()

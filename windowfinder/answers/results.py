@@ -201,7 +201,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          constraints=constraint_margins(spec, glo_n, ghi_n),
                          predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
-                         cautions=cautions(spec, fit, share, mean_only), message=res.message,
+                         cautions=(cautions(spec, fit, share, mean_only)
+                                   + clipped_guard_notes(spec, lo_n, hi_n)), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
                          volume_share=float(res.volume), **common)
 
@@ -281,6 +282,24 @@ def guard_band(spec: StudySpec, lo_n, hi_n):
     """The window's guard band in natural units: its ranges widened by each tolerance, kept in bounds."""
     tol = np.array([f.tolerance for f in spec.factors])
     return np.maximum(lo_n - tol, spec.lows), np.minimum(hi_n + tol, spec.lows + spec.spans)
+
+
+def clipped_guard_notes(spec: StudySpec, lo_n, hi_n) -> list[str]:
+    """One note per factor whose guard band :func:`guard_band` clipped at a study bound: the window's
+    edge plus its tolerance lies beyond the factor's low or high, where no model was asked."""
+    out = []
+    for f, a, b in zip(spec.factors, lo_n, hi_n):
+        if not f.tolerance:
+            continue
+        slack = 1e-9 * (f.high - f.low)   # float noise of the coded -> natural round trip
+        sides = ([f"low {f.low:.6g}"] if a - f.tolerance < f.low - slack else []) + \
+                ([f"high {f.high:.6g}"] if b + f.tolerance > f.high + slack else [])
+        if sides:
+            unit = f" {f.unit}" if f.unit else ""
+            out.append(f"The guard band for {f.name} is clipped at the study bound ({' and '.join(sides)}"
+                       f"{unit}; tolerance ± {f.tolerance:g}{unit}): the model was not asked about "
+                       "settings beyond it; if operation can drift past the bound, confirm there first.")
+    return out
 
 
 def constraint_margins(spec: StudySpec, lo_n, hi_n) -> list[dict]:
