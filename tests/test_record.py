@@ -124,3 +124,33 @@ def test_transform_refusal_names_run(tmp_path, capsys):
 def test_missing_results_file(planned, capsys):
     code = main(["record", str(planned), str(planned / "nope.csv")])
     assert code == 2 and "results file not found" in capsys.readouterr().err
+
+
+COLUMNS = ["run", "yield", "exotherm", "status", "note", "temperature", "time"]
+RUN_IDS = ["R001", "R002", "R003", "R004"]
+
+
+@pytest.mark.parametrize("text, word, choices, near", [
+    ("run,type\nR002,80\n", "type", COLUMNS, None),       # 'type' ~ 'note': ratio 0.5, chance overlap
+    ("run,yeild\nR002,80\n", "yeild", COLUMNS, "yield"),  # ratio 0.8: a letter swap
+    ("run,yield\nR2,80\n", "R2", RUN_IDS, None),          # 'R2' ~ 'R002': ratio 0.67, below the threshold
+    ("run,yield\nR0002,80\n", "R0002", RUN_IDS, "R002"),  # ratio 0.89
+])
+def test_hints_follow_the_one_close_match_policy(planned, capsys, text, word, choices, near):
+    # one hint policy (windowfinder.errors.nearest, docs/architecture.md): "did you mean" only when
+    # difflib's similarity ratio (Python standard library, SequenceMatcher.ratio) is >= CLOSE_MATCH
+    import difflib
+
+    from windowfinder.errors import CLOSE_MATCH
+
+    best = max(choices, key=lambda c: difflib.SequenceMatcher(None, word, c).ratio())
+    ratio = difflib.SequenceMatcher(None, word, best).ratio()
+    assert (ratio >= CLOSE_MATCH) == (near is not None) and (near is None or best == near)
+    code, _, err = record(planned, text, capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    if near:
+        assert f"did you mean '{near}'?" in err
+    elif choices is RUN_IDS:
+        assert "did you mean" not in err and "plan it first" in err
+    else:
+        assert "did you mean" not in err and "allowed columns: " + ", ".join(COLUMNS) in err

@@ -28,12 +28,18 @@ class InputError(Exception):
 CLOSE_MATCH = 0.75
 
 
-def nearest(word: str, valid, label: str = "valid keys") -> str:
-    """Hint for an unknown ``word``: "did you mean 'x'?" for a close match, else the valid choices."""
+def nearest(word: str, valid, label: str = "valid keys", otherwise: str | None = None) -> str:
+    """Hint for an unknown ``word``: "did you mean 'x'?" for a close match, else the valid choices.
+
+    ``otherwise`` replaces the list of choices (for long lists such as run ids): the hint is then only
+    "did you mean 'x'?" for a close match, else ``otherwise``.
+    """
     import difflib
 
     valid = [str(v) for v in valid]
     close = difflib.get_close_matches(str(word), valid, n=1, cutoff=CLOSE_MATCH)
+    if otherwise is not None:
+        return f"did you mean '{close[0]}'?" if close else otherwise
     if close:
         return f"did you mean '{close[0]}'? ({label}: {', '.join(valid)})"
     return f"{label}: {', '.join(valid)}"

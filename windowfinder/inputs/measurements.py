@@ -12,14 +12,13 @@ run table is byte-identical after any refusal.
 
 from __future__ import annotations
 
-import difflib
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
 import pandas as pd
 
-from windowfinder.errors import InputError
+from windowfinder.errors import InputError, nearest
 from windowfinder.inputs.runs import RunTable, _number, check_transforms, row_cells
 
 RESULT_STATUSES = ("done", "failed")
@@ -50,8 +49,7 @@ def _columns(header, table: RunTable, source: str) -> None:
         if header.count(c) > 1:
             raise InputError(f"{source}: column '{c}' appears twice; keep one")
         if c not in allowed:
-            close = difflib.get_close_matches(c, allowed, n=1, cutoff=0.5)
-            hint = f"did you mean '{close[0]}'?" if close else "responses are " + ", ".join(spec.response_names)
+            hint = nearest(c, allowed, "allowed columns")
             raise InputError(f"{source}: column '{c}' is not a response of the study; {hint}")
     if "run" not in header:
         raise InputError(f"{source}: missing column 'run'; results are matched to runs.csv by run id")
@@ -87,10 +85,9 @@ def merge_results(table: RunTable, header, rows, lines, source: str, replace: bo
                              f"{seen[run]}); keep one row per run")
         seen[run] = line
         if run not in index:
-            close = difflib.get_close_matches(run, list(index), n=1, cutoff=0.6)
-            hint = f"; did you mean '{close[0]}'?" if close else "; plan it first (windowfinder design)"
-            raise InputError(f"{where}: run id '{run}' is not in {table.path.name if table.path else 'runs.csv'}"
-                             + hint)
+            hint = nearest(run, list(index), otherwise="plan it first (windowfinder design)")
+            raise InputError(f"{where}: run id '{run}' is not in "
+                             f"{table.path.name if table.path else 'runs.csv'}; {hint}")
         i = index[run]
         _merge_row(frame, i, cells, col, spec, where, replace, out)
         out.runs.append(run)
