@@ -260,3 +260,51 @@ def test_margin_map_is_probability_in_sd_units(flow):
     assert all("margin to" in t for t in titles[1:]) and len(titles) == 1 + len(spec.limited)
     fig = margin_map_figure(spec, fit, None, (0, 1), spec.limited[0].name, grid=grid)
     assert fig.axes[0].legend_handles_[0].get_label().startswith("median on the limit")
+
+
+def test_maps_draw_the_window_of_record_beside_the_refit(flow, monkeypatch):
+    # contract (docs/guide.md, report): with a window of record in out/record.json every map draws it at
+    # the ranges record.json holds, in its own colour and line style, and labels the refit as such;
+    # expectations are the numbers written in record.json and window.json-format ranges (no model)
+    from matplotlib.patches import Rectangle
+
+    from windowfinder.answers import build_window
+    from windowfinder.report import sections, slice_figure, slice_grid
+
+    study = Study.load(flow["dir"])
+    spec, fit = study.spec, study.fit()
+    entry = json.loads((flow["dir"] / "out" / "record.json").read_text())["of_record"]
+    rec = {f["name"]: f for f in entry["window"]["factors"]}
+    refit = build_window(spec, fit, 0.6)   # another confidence: another window than the record's 0.9
+    assert refit.found
+    pair = (0, 2)
+    fig = slice_figure(spec, fit, refit, pair, grid=slice_grid(spec, fit, pair, m=12), record=entry)
+    fi, fj = (rec[spec.factor_names[k]] for k in pair)
+    maps = [ax for ax in fig.axes if ax.get_title()]
+    assert len(maps) == 1 + len(spec.limited)
+    for ax in maps:
+        boxes = {p.get_gid(): p for p in ax.patches if isinstance(p, Rectangle)}
+        box, win = boxes["window of record"], boxes["window"]
+        assert box.get_xy() == pytest.approx((fi["low"], fj["low"]), rel=1e-12)
+        assert (box.get_width(), box.get_height()) == pytest.approx(
+            (fi["high"] - fi["low"], fj["high"] - fj["low"]), rel=1e-12)
+        ri, rj = refit.factors[pair[0]], refit.factors[pair[1]]
+        assert win.get_xy() == pytest.approx((ri["low"], rj["low"]), rel=1e-12)
+        assert box.get_edgecolor() != win.get_edgecolor() and box.get_linestyle() != win.get_linestyle()
+        labels = [h.get_label() for h in ax.legend_handles_]
+        assert f"window of record (verified {entry['verified_utc'][:10]})" in labels
+        assert "refit window (all runs)" in labels and "window" not in labels
+    # the report's map section hands the record to every map
+    seen = []
+    monkeypatch.setattr(sections, "slice_figure", lambda *a, **k: seen.append(k.get("record")) or
+                        slice_figure(*a, **k))
+    monkeypatch.setattr(sections, "slice_grid", lambda spec, fit, pair, centre, **k:
+                        slice_grid(spec, fit, pair, centre, m=8, **{x: v for x, v in k.items() if x != "m"}))
+    text = sections.maps(sections.Content(study, fit, refit, record=entry))
+    assert seen and all(r is entry for r in seen)
+    assert "window of record" in text
+    # without a record, the plain label and no record box
+    fig = slice_figure(spec, fit, refit, pair, grid=slice_grid(spec, fit, pair, m=12))
+    ax = fig.axes[0]
+    assert not [p for p in ax.patches if p.get_gid() == "window of record"]
+    assert "window" in [h.get_label() for h in ax.legend_handles_]

@@ -6,8 +6,9 @@ without limits gets maps of its goals' predicted medians instead.
 
 With more than two factors each map is a 2-D slice through one point (by default the window centre);
 the other factors are held there. Axes are in natural units; the window box, its guard band and the
-set point are drawn at the coordinates the window spec exports (``window.json``); runs are projected
-onto the slice.
+set point are drawn at the coordinates the window spec exports (``window.json``); when a window of
+record exists (``out/record.json``, the last verified window) it is drawn beside the refit window in
+its own colour and line; runs are projected onto the slice.
 """
 
 from __future__ import annotations
@@ -22,7 +23,7 @@ from matplotlib.lines import Line2D
 from matplotlib.patches import Patch, Rectangle
 
 from windowfinder.errors import InputError
-from windowfinder.report.figures import BLACK, ORANGE, VERMILLION, label, log_scale, new_figure
+from windowfinder.report.figures import BLACK, BLUE, ORANGE, VERMILLION, label, log_scale, new_figure
 
 GRID = 60
 _HALO = [patheffects.withStroke(linewidth=3.5, foreground="white")]
@@ -121,7 +122,7 @@ MARGIN_CLIP = 4.0  # margins beyond +-4 sd (P below 3e-5 or above 0.99997) share
 
 
 def margin_map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, suggestions=None,
-                      grid=None, ax=None, legend=True):
+                      grid=None, ax=None, legend=True, record=None):
     """Margin of one limited response to its limit, in units of its predictive sd, over two factors.
 
     Diverging colours (purple: limit likely broken, orange: met), a solid line where the margin is
@@ -145,7 +146,7 @@ def margin_map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=N
                             linestyles=style, zorder=4)
             cs.set_gid(gid)
         handles.append(Line2D([], [], color=BLACK, lw=1.0, ls=style, label=text))
-    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre, record)
     ax.set_title(f"{r.name}{' (safety)' if r.is_safety else ''}: margin to {r.limit_text()}", fontsize=10)
     return _finish(fig, ax, handles, legend)
 
@@ -179,25 +180,38 @@ def _setting(frame, spec, i, j):
     return frame[names[i]].to_numpy(float), frame[names[j]].to_numpy(float)
 
 
-def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=None, centre=None):
-    """Window box, guard band, set point, slice point and runs on a map in natural units.
+def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=None, centre=None,
+                  record=None):
+    """Window box, guard band, window of record, set point, slice point and runs on a map in natural
+    units.
 
-    The window rectangle has ``gid="window"`` and the guard band ``gid="guard band"``; runs are
-    ``"done runs"``, ``"failed runs"``, ``"suggested runs"``.
+    The window rectangle has ``gid="window"`` and the guard band ``gid="guard band"``; ``record`` (an
+    entry of ``out/record.json``) adds the verified window as ``gid="window of record"`` and the
+    window is then labelled the refit window; runs are ``"done runs"``, ``"failed runs"``,
+    ``"suggested runs"``.
     """
     i, j = pair
     handles = []
+    verified = _record_ranges(spec, record, pair)
     if window is not None and window.found:
         fi, fj = window.factors[i], window.factors[j]
         box = Rectangle((fi["low"], fj["low"]), fi["high"] - fi["low"], fj["high"] - fj["low"], fill=False,
                         edgecolor=BLACK, lw=2.0, gid="window", zorder=5, path_effects=_HALO)
         ax.add_patch(box)
-        handles.append(Line2D([], [], color=BLACK, lw=2, label="window"))
+        handles.append(Line2D([], [], color=BLACK, lw=2,
+                              label="refit window (all runs)" if verified else "window"))
         if any(f.get("tolerance") for f in (fi, fj)):
             ax.add_patch(Rectangle((fi["guard_low"], fj["guard_low"]), fi["guard_high"] - fi["guard_low"],
                                    fj["guard_high"] - fj["guard_low"], fill=False, edgecolor=BLACK,
                                    lw=1.0, ls="--", gid="guard band", zorder=5))
             handles.append(Line2D([], [], color=BLACK, lw=1, ls="--", label="window ± tolerance"))
+    if verified:
+        (xa, xb), (ya, yb) = verified
+        ax.add_patch(Rectangle((xa, ya), xb - xa, yb - ya, fill=False, edgecolor=BLUE, lw=2.4, ls="-.",
+                               gid="window of record", zorder=5, path_effects=_HALO))
+        when = str(record.get("verified_utc", ""))[:10]
+        handles.append(Line2D([], [], color=BLUE, lw=2.4, ls="-.",
+                              label="window of record" + (f" (verified {when})" if when else "")))
     if window is not None and window.set_point:
         sp = window.set_point
         ax.plot(sp[spec.factor_names[i]], sp[spec.factor_names[j]], marker="P", ms=12, color=ORANGE,
@@ -229,8 +243,18 @@ def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=Non
     return handles
 
 
+def _record_ranges(spec, record, pair):
+    """The window of record's ``(low, high)`` on the two factors of ``pair``, or None (no record, or a
+    record that does not name both factors)."""
+    window = (record or {}).get("window") or {}
+    ranges = {f["name"]: (f["low"], f["high"]) for f in window.get("factors", [])
+              if f.get("low") is not None and f.get("high") is not None}
+    names = [spec.factor_names[k] for k in pair]
+    return [ranges[n] for n in names] if all(n in ranges for n in names) else None
+
+
 def map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, suggestions=None,
-               grid=None, ax=None, legend=True):
+               grid=None, ax=None, legend=True, record=None):
     """Predicted median of one response over two factors, with a line at each of its limits.
 
     Parameters
@@ -251,6 +275,8 @@ def map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, su
         Draw into this axes instead of a new figure.
     legend : bool
         Draw a legend on the axes (the handles are kept in ``ax.legend_handles_`` either way).
+    record : dict, optional
+        Entry of the window of record (``out/record.json``): its window is drawn beside ``window``.
 
     Returns
     -------
@@ -278,13 +304,13 @@ def map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=None, su
         if np.nanmin(Z) <= max(limits) and np.nanmax(Z) >= min(limits):
             ax.clabel(cs, fmt=lambda v: f"limit {v:g}", fontsize=7)
         handles.append(Line2D([], [], color=VERMILLION, lw=2, label=f"{r.name} limit {r.limit_text()}"))
-    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre, record)
     ax.set_title(f"{r.name}{' (safety)' if r.is_safety else ''}", fontsize=10)
     return _finish(fig, ax, handles, legend)
 
 
 def probability_map_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None,
-                           ax=None, confidence=None, legend=True):
+                           ax=None, confidence=None, legend=True, record=None):
     """Probability that a run meets every limit, over two factors.
 
     Filled contours of the joint probability (viridis), a line at the confidence, the *uncertain*
@@ -317,7 +343,7 @@ def probability_map_figure(spec, fit, window=None, pair=(0, 1), runs=None, sugge
             hs.set_edgecolor((1, 1, 1, 0.8) if key == "uncertain" else (0, 0, 0, 0.6))
             hs.set_linewidth(0)
         handles.append(Patch(facecolor="0.6", edgecolor=BLACK, hatch=hatch, label=text))
-    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre)
+    handles += draw_overlays(ax, spec, window, grid.pair, runs, suggestions, grid.centre, record)
     ax.set_title("P(all limits met)" + (" — process mean" if getattr(window, "mean_only", False)
                                         else " — new run"), fontsize=10)
     return _finish(fig, ax, handles, legend)
@@ -330,9 +356,10 @@ def _finish(fig, ax, handles, legend):
     return fig
 
 
-def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None):
+def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=None, grid=None, record=None):
     """The maps of a pair: first the probability that a new run meets every limit, then one margin map
-    per limited response (or, with no limits, the predicted median of every goal)."""
+    per limited response (or, with no limits, the predicted median of every goal); ``record`` (an
+    entry of ``out/record.json``) draws the window of record on each."""
     grid = _grid_for(spec, fit, window, _check_pair(spec, pair), grid)
     shown = spec.limited or spec.goals or list(spec.responses)
     lead = grid.fmap is not None
@@ -346,10 +373,11 @@ def slice_figure(spec, fit, window=None, pair=(0, 1), runs=None, suggestions=Non
     flat = list(axes.ravel())
     if lead:
         probability_map_figure(spec, fit, window, grid.pair, runs, suggestions, grid, ax=flat[0],
-                               legend=False)
+                               legend=False, record=record)
     draw = margin_map_figure if spec.limited else map_figure
     for ax, r in zip(flat[lead:], shown):
-        draw(spec, fit, window, grid.pair, r.name, runs, suggestions, grid, ax=ax, legend=False)
+        draw(spec, fit, window, grid.pair, r.name, runs, suggestions, grid, ax=ax, legend=False,
+             record=record)
     for ax in flat[panels:]:
         ax.set_axis_off()
     seen = {}

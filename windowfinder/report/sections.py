@@ -233,7 +233,9 @@ def maps(c: Content) -> str:
                 "unsure against its limit). Then, for each limit, its margin map: how many predictive "
                 "standard deviations the prediction stays inside the limit (orange) or beyond it (purple); "
                 "solid line: the predicted median on the limit; dashed: 2 sd, about 98 % for that limit "
-                "alone. Box: the window as exported to window.json (dashed: widened by the tolerance). "
+                "alone. Box: the window as exported to window.json (dashed: widened by the tolerance)"
+                + ("; blue dash-dot box: the window of record (the last verified window), beside the "
+                   "refit on all runs" if c.record is not None else "") + ". "
                 "Circles: done runs; crosses: failed runs; diamonds: suggested runs.")]
     if spec.d > 2:
         out.append(para("With more than two factors each map is a slice: the factors not on the axes are "
@@ -250,7 +252,7 @@ def maps(c: Content) -> str:
         i, j = pair
         grid = slice_grid(spec, c.fit, pair, centre, confidence=conf, feasibility=feas,
                           mean_only=bool(getattr(win, "mean_only", False)))
-        fig = slice_figure(spec, c.fit, win, pair, runs, c.suggestions, grid)
+        fig = slice_figure(spec, c.fit, win, pair, runs, c.suggestions, grid, record=c.record)
         fx, fy = spec.factors[i], spec.factors[j]
         shown = [r.name for r in (spec.limited or spec.goals or spec.responses)]
         alt = (f"Maps over {fx.name} and {fy.name}: predicted {', '.join(shown)}"
