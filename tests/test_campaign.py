@@ -238,7 +238,7 @@ def test_dask_local_cluster_completes_campaign(branin_dir):
     ("selffail", "command reported failed: nozzle clogged"),
 ])
 def test_failing_command_records_failed_runs_and_goes_on(branin_dir, sim, mode, expected):
-    # expectation: the {in}/{out} protocol of windowfinder.campaign.evaluators and DESIGN.md's "failed" status;
+    # expectation: the {in}/{out} protocol of windowfinder.campaign.commands and DESIGN.md's "failed" status;
     # every run fails with the named reason and the loop still reaches the budget (counted)
     res = run_campaign(branin_dir, command=f"{sys.executable} {sim} {{in}} {{out}} {mode}", budget=4,
                        initial=2, batch=2, workers=2, propose=helpers.random_proposer, progress=quiet)

@@ -356,7 +356,7 @@ def test_sigkill_of_run_leaves_no_simulator_and_no_folder(study_dir, tmp_path):
     assert not [p for p in started if _running(p)], "simulators outlived the campaign"
     left = [f for f in tmp_path.iterdir() if f.name.startswith("windowfinder-run-")]
     assert left  # the killed campaign could not clean up; the next evaluator does
-    from windowfinder.campaign.evaluators import clean_stale_folders
+    from windowfinder.campaign.commands import clean_stale_folders
 
     assert clean_stale_folders(tmp_path) == len(left)
     assert not [f for f in tmp_path.iterdir() if f.name.startswith("windowfinder-run-")]

@@ -247,7 +247,7 @@ def cmd_suggest(args):
 
 
 def cmd_run(args):
-    from windowfinder.campaign.evaluators import DEFAULT_RUN_TIMEOUT
+    from windowfinder.campaign.commands import DEFAULT_RUN_TIMEOUT
     from windowfinder.campaign.loop import run_campaign
 
     if args.command is not None:

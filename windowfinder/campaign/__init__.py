@@ -1,5 +1,5 @@
-"""Closed-loop campaigns: ``evaluators`` run one run, ``engines`` say where (pools, Dask), ``ledger`` keeps
-runs.csv, ``loop`` runs it.
+"""Closed-loop campaigns: ``evaluators`` run one run (``commands``: an external program), ``engines`` say
+where (pools, Dask), ``ledger`` keeps runs.csv, ``loop`` runs it.
 """
 
 from windowfinder.campaign.ledger import RunLedger, admissible  # noqa: F401

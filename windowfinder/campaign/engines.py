@@ -13,7 +13,8 @@ import os
 from concurrent import futures as cf
 
 from windowfinder.errors import InputError
-from windowfinder.campaign.evaluators import FunctionEvaluator, one_line, stop_commands
+from windowfinder.campaign.commands import stop_commands
+from windowfinder.campaign.evaluators import FunctionEvaluator, one_line
 
 def _process_context():
     """Start method for pool workers: a fork server (one clean process, started once, with windowfinder

@@ -33,7 +33,8 @@ import pandas as pd
 
 from windowfinder.errors import InputError
 from windowfinder.campaign.engines import check_count, make_engine
-from windowfinder.campaign.evaluators import CommandEvaluator, FunctionEvaluator, RunOutcome, one_line
+from windowfinder.campaign.commands import CommandEvaluator
+from windowfinder.campaign.evaluators import FunctionEvaluator, RunOutcome, one_line
 from windowfinder.campaign.ledger import UNSAVED, RunLedger, admissible  # noqa: F401 (re-exported)
 from windowfinder.study import Study
 
@@ -111,7 +112,7 @@ class Campaign:
     ----------
     evaluator : callable
         ``evaluator(run, settings, seed) -> RunOutcome``, e.g. a
-        :class:`~windowfinder.campaign.evaluators.CommandEvaluator` or
+        :class:`~windowfinder.campaign.commands.CommandEvaluator` or
         :class:`~windowfinder.campaign.evaluators.FunctionEvaluator`; it must be picklable for a process pool or Dask.
     budget : int
         Completed (done + failed) runs runs.csv shall hold at the end; never exceeded.
@@ -365,7 +366,7 @@ def run_campaign(study_dir, *, command: str | None = None, function=None, budget
     study_dir : path-like
         Study folder with study.toml and runs.csv (created when absent).
     command : str, optional
-        ``"PROGRAM ARGS {in} {out}"``; see :mod:`windowfinder.campaign.evaluators` for the file protocol.
+        ``"PROGRAM ARGS {in} {out}"``; see :mod:`windowfinder.campaign.commands` for the file protocol.
     function : str or callable, optional
         ``"module:callable"`` or a callable, ``fn(settings: dict) -> dict`` (optionally ``seed=``).
         Exactly one of ``command`` and ``function``.

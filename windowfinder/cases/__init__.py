@@ -8,7 +8,7 @@ Every case is a folder ``cases/<name>/`` at the top of the repository, imported 
 * ``simulator.py`` a physically motivated stand-in for the real process, with run-to-run noise;
 * ``runs.csv``     an example run table: a seeded space-filling design run on the simulator;
 * ``__main__.py``  the command-line entry ``python -m windowfinder.cases.<name> IN OUT`` following the
-  run protocol of :mod:`windowfinder.campaign.evaluators` (see :mod:`windowfinder.cases.entry`).
+  run protocol of :mod:`windowfinder.campaign.commands` (see :mod:`windowfinder.cases.entry`).
 
 Where the folders are found: a built wheel carries them inside the package (``pyproject.toml`` maps
 ``windowfinder.cases.<name>`` to ``cases/<name>``); in a checkout or an editable install they stay at

@@ -1,6 +1,6 @@
 """Command-line entry of a bundled case: ``python -m windowfinder.cases.<name> IN OUT [--seed N]``.
 
-It follows the run protocol of :mod:`windowfinder.campaign.evaluators`, so a bundled simulator can stand
+It follows the run protocol of :mod:`windowfinder.campaign.commands`, so a bundled simulator can stand
 in for any external program in ``windowfinder run DIR --command "python -m windowfinder.cases.reactor
 {in} {out}"``:
 
