@@ -131,6 +131,8 @@ class Study:
             raise InputError(f"--seed {seed!r}: must be a whole number from 0 to {MAX_SEED}")
         if centre is None:
             centre = 1 if method in ("box-behnken", "ccd-inscribed", "ccd-circumscribed") else 0
+        if self.spec.categorical:
+            return self._design_by_level(method, runs, centre, seed, blocks)
         block_of = None
         made = self.runs.completed()
         if blocks is not None and len(made) and self.runs.blocks(made) is None:
@@ -177,6 +179,69 @@ class Study:
         if block_of is not None:
             frame["block"] = [f"B{b + 1}" for b in block_of[order]]
         for r in self.spec.response_names:
+            frame[r] = np.nan
+        frame["status"] = "planned"
+        frame["note"] = f"design {method}"
+        frame.attrs["notes"] = notes
+        return frame
+
+    def _design_by_level(self, method: str, runs, centre: int, seed: int, blocks) -> pd.DataFrame:
+        """A design balanced over the levels of the categorical factors (each level combination a slice).
+
+        Space-filling without constraints: a sliced Latin hypercube over the numeric factors, one slice
+        per level combination (Qian 2012, :mod:`windowfinder.inputs.slices`): each slice and their union
+        are Latin hypercubes. Otherwise the design of the numeric factors is made once per combination
+        (classical designs replicated per level; constrained and unevenly split space-filling designs
+        drawn per level, counts within one). ``runs`` and ``centre`` count all levels together.
+        """
+        spec = self.spec
+        if blocks is not None:
+            raise InputError("--blocks together with a categorical factor is not supported yet; design "
+                             "without --blocks (the runs are already balanced over the levels)")
+        combos = spec.level_combinations()
+        k = len(combos)
+        sub = spec.numeric_part()
+        inner = Study(self.dir, sub, read_runs(self.dir / "__none__.csv", sub))
+        d_num = sub.d
+        n = 10 * spec.d if runs is None and method in ("space-filling", "sobol") else runs
+        if n is not None and method not in ("space-filling", "sobol") and int(n) % k:
+            raise InputError(f"--runs {n}: {method} is replicated once per level combination ({k}); give a "
+                             f"multiple of {k} or leave --runs unset")
+        per = [None] * k if n is None else [int(n) // k + (i < int(n) % k) for i in range(k)]
+        cen = [centre // k + (i < centre % k) for i in range(k)]
+        if n is not None and min(per) < 1:
+            raise InputError(f"--runs {n}: fewer runs than the {k} level combinations; give at least {k}")
+        parts, notes = [], []
+        if method == "space-filling" and not spec.constraints and len(set(per)) == 1:
+            from windowfinder.inputs.slices import sliced_latin_hypercube
+
+            designs.design_size(method, d_num, runs=per[0], centre=0)   # validates the sizes
+            U, slice_of = sliced_latin_hypercube(d_num, k, per[0], seed=seed)
+            X = inner._snap_in_strata(U, len(U))
+            for i in range(k):
+                Xi = X[slice_of == i]
+                if cen[i]:
+                    Xi = np.vstack([Xi, np.repeat(sub.round_to_step(sub.to_natural(np.full((1, d_num), 0.5))),
+                                                  cen[i], axis=0)])
+                parts.append(Xi)
+            notes.append(f"sliced Latin hypercube: {per[0]} runs per level combination ({k} slices)")
+        else:
+            for i in range(k):
+                f = inner.design(method, runs=per[i], centre=cen[i], seed=seed + i)
+                parts.append(f[sub.factor_names].to_numpy(dtype=float))
+                notes += [x for x in f.attrs.get("notes", []) if x not in notes]
+            notes.append(f"{method} made once per level combination ({k})")
+        rows = []
+        for combo, Xi in zip(combos, parts):
+            full = np.empty((len(Xi), spec.d))
+            full[:, spec.numeric] = Xi
+            full[:, spec.categorical] = np.array(combo, dtype=float)
+            rows.append(full)
+        X = np.vstack(rows)
+        X = X[np.random.default_rng(seed).permutation(len(X))]
+        frame = spec.labelled(pd.DataFrame(X, columns=spec.factor_names))
+        frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
+        for r in spec.response_names:
             frame[r] = np.nan
         frame["status"] = "planned"
         frame["note"] = f"design {method}"
@@ -425,7 +490,8 @@ class Study:
                              "failed_limit (the runs then feed the failure model) or the block column")
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
-            need = {"quadratic": (d + 1) * (d + 2) // 2 + 1, "linear": d + 2}.get(kinds[r.name], 3)
+            need = {"quadratic": (d + 1) * (d + 2) // 2 + 1 - len(self.spec.categorical),
+                    "linear": d + 2}.get(kinds[r.name], 3)
             if n < need:
                 raise InputError(f"{self.runs_path.name}: response '{r.name}' has {n} measured runs; "
                                  f"fitting a {kinds[r.name]} model needs at least {need}; add runs first "
@@ -436,14 +502,16 @@ class Study:
         with threadpool_limits(1, user_api="blas"):  # small matrices: threads cost more than they give
             sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
                                         kind=kinds, n_restarts=n_restarts, seed=self.spec.seed,
-                                        blocks=blocks, censored=censored)
+                                        blocks=blocks, censored=censored,
+                                        categorical=tuple(self.spec.categorical))
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
             # with blocks the model holds the block-corrected values: checks run on those
             y = None if blocks is not None or r.name in censored else y[np.isfinite(y)]
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
-                                  self.spec.spans, choice=sur.choices.get(r.name)))
+                                  self.spec.spans, choice=sur.choices.get(r.name),
+                                  term_names=self.spec.term_names))
         warnings = list(self.runs.warnings)
         ids = self.runs.completed()["run"].astype(str).to_numpy()
         for r in self.spec.responses:

@@ -98,7 +98,13 @@ def merge_results(table: RunTable, header, rows, lines, source: str, replace: bo
 def _merge_row(frame, i, cells, col, spec, where, replace, out) -> None:
     old_status = frame.at[i, "status"]
     for f in spec.factors:  # factor columns are a check that the right run is meant, never a change
-        if f.name in col and cells[col[f.name]].strip():
+        if f.name in col and cells[col[f.name]].strip() and f.is_categorical:
+            given_level, planned_level = cells[col[f.name]].strip(), f.label(frame.at[i, f.name])
+            if given_level != planned_level:
+                raise InputError(f"{where}: '{f.name}' = '{given_level}' differs from the planned "
+                                 f"'{planned_level}' in runs.csv; a result is recorded for the settings of "
+                                 "its run (plan a new run for other settings)")
+        elif f.name in col and cells[col[f.name]].strip():
             v = _number(cells[col[f.name]], where, f.name, allow_blank=False)
             planned = float(frame.at[i, f.name])
             if not math.isclose(v, planned, rel_tol=1e-9, abs_tol=1e-12 * f.span):

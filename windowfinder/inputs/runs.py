@@ -224,6 +224,18 @@ def _number(cell: str, where: str, column: str, allow_blank: bool) -> float:
     return v
 
 
+def level_value(cell: str, where: str, factor) -> float:
+    """Level index (as a float, the natural value inside) of a categorical factor's cell (a level name)."""
+    s = cell.strip()
+    if s == "":
+        raise InputError(f"{where}: '{factor.name}' is empty; every run needs all factor settings (one of "
+                         + ", ".join(factor.levels) + ")")
+    if s not in factor.levels:
+        raise InputError(f"{where}: '{factor.name}' = '{s}' is not one of its levels; "
+                         + nearest(s, factor.levels, "levels are") + "; fix the cell")
+    return float(factor.levels.index(s))
+
+
 def row_cells(cells, n_columns: int, run_column: int, name: str, line: int, empty_hint: str):
     """One table row: cells padded to the header, its run id and the ``where`` of its messages.
 
@@ -300,6 +312,9 @@ def read_runs(path, spec: StudySpec) -> RunTable:
             raise InputError(f"{where}: '{BLOCK}' is empty; give every run made its block label (day, lot, "
                              f"operator) or remove the {BLOCK} column")
         for f in spec.factors:
+            if f.is_categorical:
+                rec[f.name] = level_value(cells[col[f.name]], where, f)
+                continue
             rec[f.name] = v = _number(cells[col[f.name]], where, f.name, allow_blank=False)
             if not -FAR_OUTSIDE <= f.to_coded(v) <= 1 + FAR_OUTSIDE:
                 raise InputError(f"{where}: '{f.name}' = {v:g} lies far outside the study range "
@@ -472,7 +487,7 @@ def append_runs(path, spec: StudySpec, new: pd.DataFrame) -> None:
             return
         if old and not old.endswith("\n"):
             old += "\n"
-        write_atomic(path, old + format_rows(new, header))
+        write_atomic(path, old + format_rows(spec.labelled(new), header))
     else:
         write_runs(path, spec, new)
 
@@ -484,7 +499,7 @@ def write_runs(path, spec: StudySpec, frame: pd.DataFrame) -> None:
         header.insert(-1, BLOCK)   # only when used, so tables without blocks stay as they were
     if FAILED_LIMIT in frame.columns and (frame[FAILED_LIMIT].fillna("").astype(str) != "").any():
         header.insert(-1, FAILED_LIMIT)   # only when used, so tables without it stay as they were
-    frame = frame.copy()
+    frame = spec.labelled(frame)   # categorical factors as their level names
     for r in spec.response_names:   # censored values are written back as "<bound"
         below = frame[below_column(r)].to_numpy(dtype=float) if below_column(r) in frame.columns else None
         if below is not None and np.isfinite(below).any():

@@ -26,7 +26,10 @@ TRANSFORMS = ("none", "log", "logit")
 MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.models.choice)
 
 STUDY_KEYS = ("name", "confidence", "seed", "description")
-FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance")
+FACTOR_KEYS = ("name", "unit", "low", "high", "step", "tolerance", "levels")
+# Most level combinations of the categorical factors searched one by one (window per combination,
+# designs sliced per combination): beyond that a study should be split (common practice, no source).
+MAX_LEVEL_COMBINATIONS = 16
 RESPONSE_KEYS = ("name", "unit", "goal", "min", "max", "target", "kind", "transform", "bounds", "model",
                  "detection_limit")
 CONSTRAINT_KEYS = ("name", "terms", "min", "max")
@@ -61,10 +64,29 @@ class Factor:
     unit: str = ""
     step: float | None = None
     tolerance: float = 0.0
+    levels: tuple[str, ...] = ()
 
     @property
     def span(self) -> float:
         return self.high - self.low
+
+    @property
+    def is_categorical(self) -> bool:
+        """A factor with named levels: natural value = level index (0 .. L-1, step 1), coded index/(L-1)."""
+        return bool(self.levels)
+
+    def label(self, x):
+        """Level name of a natural value (the level index) of a categorical factor; ``x`` itself else."""
+        if not self.levels or isinstance(x, str):
+            return x
+        return self.levels[int(np.clip(np.round(float(x)), 0, len(self.levels) - 1))]
+
+    def index_of(self, name: str) -> int:
+        """Level index of a level name (``InputError`` naming the valid levels when it is not one)."""
+        if name not in self.levels:
+            raise InputError(f"'{name}' is not a level of factor '{self.name}'; "
+                             + nearest(name, self.levels, "levels are"))
+        return self.levels.index(name)
 
     def to_coded(self, x):
         return (np.asarray(x, dtype=float) - self.low) / self.span
@@ -222,6 +244,57 @@ class StudySpec:
     def has_steps(self) -> bool:
         return any(f.step for f in self.factors)
 
+    # -- categorical factors -----------------------------------------------------------------------
+    @property
+    def categorical(self) -> list[int]:
+        """Column indices of the categorical factors (``levels = [...]``)."""
+        return [j for j, f in enumerate(self.factors) if f.is_categorical]
+
+    @property
+    def numeric(self) -> list[int]:
+        """Column indices of the numeric factors."""
+        return [j for j, f in enumerate(self.factors) if not f.is_categorical]
+
+    def level_combinations(self) -> list[tuple[int, ...]]:
+        """Every combination of level indices of the categorical factors (one empty tuple when none)."""
+        import itertools
+
+        return list(itertools.product(*[range(len(self.factors[j].levels)) for j in self.categorical]))
+
+    def level_codes(self, combo) -> np.ndarray:
+        """Coded values of the categorical columns for a combination of level indices."""
+        return np.array([i / self.factors[j].span for j, i in zip(self.categorical, combo)], dtype=float)
+
+    @property
+    def term_names(self) -> list[str]:
+        """Column names for model term tables: a categorical factor's indicator is ``gas[mix]`` (1 at its
+        second level, 0 at its first)."""
+        return [f"{f.name}[{f.levels[1]}]" if f.is_categorical else f.name for f in self.factors]
+
+    def numeric_part(self) -> "StudySpec":
+        """The study without its categorical factors (constraints weigh numeric factors only)."""
+        from dataclasses import replace
+
+        return replace(self, factors=tuple(f for f in self.factors if not f.is_categorical))
+
+    def labelled(self, frame):
+        """A copy of a table with the categorical factor columns as level names (natural units at the
+        edges: runs.csv, next.csv, design.csv, ...); cells already holding a name stay as they are."""
+        frame = frame.copy()
+        for j in self.categorical:
+            f = self.factors[j]
+            if f.name in frame.columns:
+                frame[f.name] = [v if isinstance(v, str) or v is None or (isinstance(v, float) and
+                                 math.isnan(v)) else f.label(v) for v in frame[f.name]]
+        return frame
+
+    def point_text(self, values: dict, digits: int = 4) -> str:
+        """``a = 1.23, gas = mix``: a setting in natural units for a one-line message."""
+        parts = []
+        for k, v in values.items():
+            parts.append(f"{k} = {v}" if isinstance(v, str) else f"{k} = {v:.{digits}g}")
+        return ", ".join(parts)
+
     def to_dict(self) -> dict:
         return asdict(self)
 
@@ -327,6 +400,13 @@ class _Parser:
         if not isinstance(responses, list) or not responses:
             self.fail("[[response]]", "no responses; add at least one [[response]] table")
         fs = tuple(self.factor(t, i + 1) for i, t in enumerate(factors))
+        combos = math.prod(len(f.levels) for f in fs if f.is_categorical)
+        if combos > MAX_LEVEL_COMBINATIONS:
+            self.fail("[[factor]]", f"the categorical factors have {combos} level combinations; at most "
+                      f"{MAX_LEVEL_COMBINATIONS} are supported: merge levels or split the study")
+        if all(f.is_categorical for f in fs):
+            self.fail("[[factor]]", "every factor is categorical; a window needs at least one numeric "
+                      "factor with low and high")
         rs = tuple(self.response(t, i + 1) for i, t in enumerate(responses))
         cons = data.get("constraint", [])
         if not isinstance(cons, list):
@@ -362,6 +442,9 @@ class _Parser:
             if k not in names:
                 self.fail(where, f"terms: unknown factor '{k}'; " + _nearest(k, names).replace(
                     "valid keys", "factors are"))
+            if next(f for f in factors if f.name == k).is_categorical:
+                self.fail(where, f"terms: '{k}' is a categorical factor (levels); a linear constraint "
+                          "can only weigh numeric factors")
             coef[k] = self.number(terms, k, f"{where} terms")
         if all(c == 0.0 for c in coef.values()):
             self.fail(where, "every coefficient in terms is 0; give at least one non-zero coefficient")
@@ -392,6 +475,8 @@ class _Parser:
         where = self.where("factor", t, i)
         self.keys(t, FACTOR_KEYS, where)
         name = self.name(t, where)
+        if "levels" in t:
+            return self.categorical(t, where, name)
         low = self.number(t, "low", where, required=True)
         high = self.number(t, "high", where, required=True)
         if low >= high:
@@ -410,6 +495,33 @@ class _Parser:
             self.fail(where, f"tolerance = {tol:g} must be >= 0 and below half the range")
         return Factor(name=name, low=low, high=high, unit=self.text(t, "unit", where),
                       step=step, tolerance=tol)
+
+    def categorical(self, t, where, name) -> Factor:
+        """A factor with named levels: no low/high/step/tolerance; 2 or more distinct level names."""
+        for key in ("low", "high", "step", "tolerance"):
+            if key in t:
+                self.fail(where, f"'{key}' cannot go with 'levels' (a categorical factor has named levels, "
+                          f"no range); remove '{key}' or 'levels'")
+        levels = t["levels"]
+        if not isinstance(levels, list) or not all(isinstance(v, str) for v in levels):
+            self.fail(where, f"levels = {_short(levels)} must be a list of names in quotes, e.g. "
+                      "levels = [\"pure\", \"mix\"]")
+        if len(levels) < 2:
+            self.fail(where, f"levels = {_short(levels)}: a categorical factor needs at least two levels "
+                      "(with one level, leave the factor out of the study)")
+        if len(levels) > 2:
+            self.fail(where, f"levels = {_short(levels)}: only two-level categorical factors are supported "
+                      "so far; split the study by level or merge levels")
+        for v in levels:
+            if not v.strip():
+                self.fail(where, "levels: a level name is empty")
+            problem = name_problem(v)
+            if problem:
+                self.fail(where, f"levels: {problem}")
+            if levels.count(v) > 1:
+                self.fail(where, f"levels: duplicate level '{v}'; level names must be unique")
+        return Factor(name=name, low=0.0, high=float(len(levels) - 1), unit=self.text(t, "unit", where),
+                      step=1.0, tolerance=0.0, levels=tuple(levels))
 
     def response(self, t, i) -> Response:
         where = self.where("response", t, i)

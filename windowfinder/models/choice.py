@@ -94,17 +94,18 @@ class ModelChoice:
         return f"LOO log density {', '.join(parts)} -> {self.chosen} ({how}{terms})"
 
 
-def _polynomial(X, y, transform, terms=None, degree=2):
-    return PolynomialModel(terms=terms, transform=transform, degree=degree).fit(X, y)
+def _polynomial(X, y, transform, terms=None, degree=2, categorical=()):
+    return PolynomialModel(terms=terms, transform=transform, degree=degree,
+                           categorical=tuple(categorical)).fit(X, y)
 
 
-def _candidates_polynomial(X, y, transform, notes):
+def _candidates_polynomial(X, y, transform, notes, categorical=()):
     """Full second-order (or, failing that, first-order) model and its AICc reduction."""
     out = {}
     full = None
     for degree, name in ((2, "quadratic"), (1, "linear")):
         try:
-            m = _polynomial(X, y, transform, degree=degree)
+            m = _polynomial(X, y, transform, degree=degree, categorical=categorical)
         except InputError as err:
             notes.append(f"{name}: {err}")
             continue
@@ -114,18 +115,18 @@ def _candidates_polynomial(X, y, transform, notes):
         notes.append(f"{name}: {m.df_resid_} residual degree of freedom; leave-one-out needs 2")
     if full is None:
         return out
-    kept = backward_eliminate(2.0 * full.X_train_ - 1.0, full.z_train_, full.terms_)
+    kept = backward_eliminate(full._coded(full.X_train_), full.z_train_, full.terms_)
     if kept != full.terms_:
-        out["reduced"] = _polynomial(X, y, transform, terms=kept)
+        out["reduced"] = _polynomial(X, y, transform, terms=kept, categorical=categorical)
     return out
 
 
-def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None):
+def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None, categorical=()):
     """The fitted candidates of ``model = "auto"``: ``{"gp": ..., "quadratic" | "linear": ...,
     "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``)."""
     notes = [] if notes is None else notes
     out = {"gp": GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)}
-    out.update(_candidates_polynomial(X, y, transform, notes))
+    out.update(_candidates_polynomial(X, y, transform, notes, categorical))
     return out
 
 
@@ -134,7 +135,7 @@ def _choice(requested, key, m, scores, notes=()):
     return m, ModelChoice(requested, key, scores, list(notes), terms)
 
 
-def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blocks=None):
+def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blocks=None, categorical=()):
     """Fit the model a response asks for (or, with ``"auto"``, the best by leave-one-out).
 
     Parameters
@@ -148,6 +149,10 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     blocks : array (n,) or None
         Block label per run: the Gaussian process with a random offset per block
         (:func:`windowfinder.models.blocks.fit_blocked`); ``model`` must then be ``"gp"`` or ``"auto"``.
+    categorical : tuple of int
+        Columns of two-level categorical factors (0/1): indicator terms in the polynomials. The Gaussian
+        process takes them as they are: its own length scale on a 0/1 column gives the exchangeable
+        correlation between the two levels (Qian, Wu & Wu 2008).
 
     Returns
     -------
@@ -167,9 +172,9 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
         m = GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)
         return _choice(model, "gp", m, {"gp": loo_log_density(m)})
     if model in ("quadratic", "linear"):
-        m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1)
+        m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1, categorical=categorical)
         return _choice(model, model, m, {model: loo_log_density(m)})
-    cands = candidates(X, y, transform, n_restarts, seed, notes)
+    cands = candidates(X, y, transform, n_restarts, seed, notes, categorical)
     scores = {k: loo_log_density(m) for k, m in cands.items()}
     best = "gp"
     for k, s in scores.items():

@@ -186,7 +186,8 @@ def _press_q2(v, v_loo):
     return q2, unit * math.sqrt(press / max(v.size, 1))
 
 
-def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=(), choice=None):
+def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=(), choice=None,
+             term_names=None):
     """Leave-one-out diagnostics of a fitted :class:`~windowfinder.models.gp.GPModel` or ``QuadraticModel``.
 
     Parameters
@@ -202,6 +203,9 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
         ``high - low`` per factor, to express length scales in factor units.
     choice : ModelChoice or None
         Recorded as ``choice``.
+    term_names : sequence of str or None
+        Column names for a polynomial's term table (``gas[mix]`` for a categorical factor's indicator);
+        default ``factor_names``.
 
     Returns
     -------
@@ -249,7 +253,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     notes += ls_notes
     terms = []
     if hasattr(model, "term_table"):
-        names = list(factor_names) if len(factor_names) == model.X_train_.shape[1] else None
+        names = list(term_names or factor_names)   # term_names: gas[mix] for a categorical factor
+        names = names if len(names) == model.X_train_.shape[1] else None
         terms = model.term_table(names).to_dict("records")
     z_bar = float(np.mean(model.z_train_))
     slope = float(tr.inverse_slope(z_bar))

@@ -23,12 +23,17 @@ from windowfinder.models.transform import _as_transform
 CRITERIA = ("aicc", "bic")
 
 
-def full_terms(d, degree=2):
-    """Terms of the full polynomial: intercept, linear, then (degree 2) interactions row by row and squares."""
+def full_terms(d, degree=2, categorical=()):
+    """Terms of the full polynomial: intercept, linear, then (degree 2) interactions row by row and squares.
+
+    ``categorical``: columns holding a two-level indicator (0/1); they get no square, which would repeat
+    the indicator itself (dummy-variable regression, Montgomery, Peck & Vining 2012, *Introduction to
+    Linear Regression Analysis*, 5th ed., §8.1); their interactions with the other factors stay.
+    """
     terms = [(), *[(i,) for i in range(d)]]
     if degree == 2:
         terms += [(i, j) for i in range(d) for j in range(i + 1, d)]
-        terms += [(i, i) for i in range(d)]
+        terms += [(i, i) for i in range(d) if i not in set(categorical)]
     return terms
 
 
@@ -146,6 +151,9 @@ class PolynomialModel(_ResponseModel):
         Units of ``coef_``: ``"pm1"`` uses ``x = 2u - 1``; ``"unit"`` the [0, 1] inputs directly.
         Predictions of the full polynomial do not depend on it (a reduced one does, since dropping a term
         means something different in the two codings).
+    categorical : tuple of int
+        Columns of two-level categorical factors: always indicator (dummy) columns, 0 at the first level
+        and 1 at the second, whatever ``coding`` says, and without a square term (:func:`full_terms`).
 
     Attributes
     ----------
@@ -162,12 +170,13 @@ class PolynomialModel(_ResponseModel):
         freedom.
     """
 
-    def __init__(self, terms=None, transform="none", bounds=None, degree=2, coding="pm1"):
+    def __init__(self, terms=None, transform="none", bounds=None, degree=2, coding="pm1", categorical=()):
         self.terms = terms
         self.transform = transform
         self.bounds = bounds
         self.degree = degree
         self.coding = coding
+        self.categorical = categorical
 
     @property
     def kind(self):
@@ -177,7 +186,7 @@ class PolynomialModel(_ResponseModel):
             return "quadratic" if self.terms is None and self.degree == 2 else "polynomial"
         d = self.X_train_.shape[1]
         for name, deg in (("linear", 1), ("quadratic", 2)):
-            if list(terms) == full_terms(d, deg):
+            if list(terms) == full_terms(d, deg, self.categorical):
                 return name
         return "reduced"
 
@@ -185,7 +194,13 @@ class PolynomialModel(_ResponseModel):
         return self.coef_.shape[0]
 
     def _coded(self, X):
-        return 2.0 * X - 1.0 if self.coding == "pm1" else X
+        if self.coding != "pm1":
+            return X
+        C = 2.0 * X - 1.0
+        cat = list(self.categorical)
+        if cat:   # indicator columns stay 0/1 (dummy coding)
+            C[:, cat] = X[:, cat]
+        return C
 
     def _features(self, X):
         return term_matrix(self._coded(X), self.terms_)
@@ -206,7 +221,8 @@ class PolynomialModel(_ResponseModel):
             raise InputError(f"polynomial model: degree must be 1 or 2 and coding pm1 or unit, "
                              f"got {self.degree}, {self.coding}")
         X, y = _check_xy(X, y)
-        terms = full_terms(X.shape[1], self.degree) if self.terms is None else [tuple(t) for t in self.terms]
+        terms = (full_terms(X.shape[1], self.degree, self.categorical) if self.terms is None
+                 else [tuple(t) for t in self.terms])
         if () not in terms or any(max(t, default=-1) >= X.shape[1] for t in terms):
             raise InputError("polynomial model: the terms must include the intercept () and name only "
                              f"factors 0..{X.shape[1] - 1}")

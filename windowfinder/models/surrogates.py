@@ -48,7 +48,7 @@ class Surrogates:
 
     @classmethod
     def fit_arrays(cls, X, Y, transforms=None, works=None, kind="gp", n_restarts=5, seed=0, blocks=None,
-                   censored=None):
+                   censored=None, categorical=()):
         """Fit one model per response.
 
         Parameters
@@ -72,6 +72,9 @@ class Surrogates:
             (one each, or one per censored run); they enter that response's model
             as censored values (:func:`windowfinder.models.censored.fit_censored`) and should be passed
             with ``works`` True, since the limit explains them.
+        categorical : tuple of int
+            Columns of two-level categorical factors (0/1 in coded units), see
+            :func:`windowfinder.models.choice.fit_response`.
         """
         kinds = {name: (kind.get(name, "gp") if isinstance(kind, dict) else kind) for name in Y}
         for k in kinds.values():
@@ -95,7 +98,8 @@ class Surrogates:
             try:
                 models[name], choices[name] = fit_response(X[rows], y[rows], kinds[name], t,
                                                            n_restarts=n_restarts, seed=seed,
-                                                           blocks=None if blocks is None else blocks[rows])
+                                                           blocks=None if blocks is None else blocks[rows],
+                                                           categorical=categorical)
                 cens = (censored or {}).get(name)
                 if cens is not None and np.asarray(cens[0], bool).any():   # refit the chosen model
                     mask = np.asarray(cens[0], bool)
