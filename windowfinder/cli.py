@@ -145,13 +145,36 @@ def _set_point(items, spec):
         name, sep, value = it.partition("=")
         if not sep:
             raise InputError(f"--set-point '{it}': write NAME=VALUE, e.g. {spec.factor_names[0]}=50")
-        spec.factor(name.strip())
+        f = spec.factor(name.strip())
+        if f.is_categorical:   # a level name
+            out[f.name] = f.levels[f.index_of(value.strip())]
+            continue
         try:
             out[name.strip()] = float(value)
         except ValueError:
             raise InputError(f"--set-point '{it}': '{value}' is not a number") from None
         if not math.isfinite(out[name.strip()]):
             raise InputError(f"--set-point '{it}': '{value}' is not a finite number")
+    return out
+
+
+def _levels(items, spec):
+    """``--level gas=mix``: ``{factor: level}`` of categorical factors, checked before any fit."""
+    from windowfinder.answers.results import allowed_combinations
+
+    if not items:
+        return None
+    out = {}
+    for it in items:
+        name, sep, value = it.partition("=")
+        if not sep:
+            raise InputError(f"--level '{it}': write FACTOR=LEVEL, e.g. gas=mix")
+        out[name.strip()] = value.strip()
+    try:   # names and levels checked here, one line each
+        allowed_combinations(spec, out)
+    except InputError as err:
+        msg = str(err)
+        raise InputError(msg if msg.startswith("--level") else f"--level: {msg}") from None
     return out
 
 
@@ -169,10 +192,12 @@ def cmd_window(args):
 
     study = _load(args)
     sp = _set_point(args.set_point, study.spec)
+    levels = _levels(args.level, study.spec)
     fit = study.fit()
     _warn(fit.warnings)
     print("searching for the largest window ...", file=sys.stderr)
-    win = build_window(study.spec, fit, args.confidence, set_point=sp, mean_only=args.mean)
+    win = build_window(study.spec, fit, args.confidence, set_point=sp, mean_only=args.mean,
+                       levels=levels)
     change = previous_note(study.spec, feasibility_of(study.spec, fit, args.mean),
                            _out(study, "window.json"), win, study.runs.done())
     prov = provenance(study, win.confidence, args.mean, fit)
@@ -442,6 +467,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s.add_argument("--set-point", nargs="+", metavar="NAME=VALUE",
                    help="widest symmetric ranges around this set point (give every factor)")
+    s.add_argument("--level", nargs="+", metavar="FACTOR=LEVEL",
+                   help="fix a categorical factor's level (the window then holds at that level)")
     s.add_argument("--mean", action="store_true",
                    help="judge the process mean instead of each new run (excludes run-to-run noise)")
     s = verb("tradeoff", cmd_tradeoff, "find the best trade-off between the goals inside the limits")

@@ -555,8 +555,8 @@ class Study:
                       X_known, count, aim=aim, confidence=confidence, seed=seed, snap=snap,
                       tolerance=spec.tolerances_coded, factor_names=spec.factor_names,
                       study_dir=str(self.dir))
-        frame = sug.to_frame(spec.factor_names,
-                             to_natural=lambda U: spec.round_to_step(spec.to_natural(U)))
+        frame = spec.labelled(sug.to_frame(spec.factor_names,
+                                           to_natural=lambda U: spec.round_to_step(spec.to_natural(U))))
         frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
         return NextRuns(frame, sug.advice, sug.message, sug)
 

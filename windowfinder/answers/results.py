@@ -108,6 +108,7 @@ class ProcessWindow:
     supported: bool = True
     advice: str = ""
     constraints: list[dict] = field(default_factory=list)
+    fixed_levels: dict | None = None   # window --level: {categorical factor: level}
 
     def to_dict(self) -> dict:
         return asdict(self)
@@ -116,9 +117,31 @@ class ProcessWindow:
         return pd.DataFrame(self.factors)
 
     def coded_box(self, spec: StudySpec, guard: bool = False):
-        lo = [f["guard_low" if guard else "low"] for f in self.factors]
-        hi = [f["guard_high" if guard else "high"] for f in self.factors]
-        return spec.to_coded(lo)[0], spec.to_coded(hi)[0]
+        """Coded ranges of the window (categorical columns at the first level it names)."""
+        return window_boxes(spec, self.factors, guard)[0][:2]
+
+
+def window_boxes(spec: StudySpec, factors: list[dict], guard: bool = False) -> list[tuple]:
+    """``(lower, upper, combo)`` in coded units for every level combination a window names (window.json
+    ``factors`` entries: numeric ``low``/``high``, categorical ``levels``); one box without categorical
+    factors (``combo = ()``)."""
+    by_name = {f["name"]: f for f in factors}
+    lo = np.zeros(spec.d)
+    hi = np.zeros(spec.d)
+    for j, f in enumerate(spec.factors):
+        if not f.is_categorical:
+            e = by_name[f.name]
+            lo[j] = f.to_coded(e.get("guard_low", e["low"]) if guard else e["low"])
+            hi[j] = f.to_coded(e.get("guard_high", e["high"]) if guard else e["high"])
+    choices = [[spec.factors[j].index_of(v) for v in by_name[spec.factors[j].name]["levels"]]
+               for j in spec.categorical]
+    import itertools
+
+    out = []
+    for combo in itertools.product(*choices):
+        a, b = _at_levels(spec, lo, combo)[0], _at_levels(spec, hi, combo)[0]
+        out.append((a, b, tuple(combo)))
+    return out
 
 
 def _point(spec: StudySpec, u) -> dict:
@@ -126,7 +149,7 @@ def _point(spec: StudySpec, u) -> dict:
         return {}
     x = spec.to_natural(np.asarray(u, dtype=float))[0]
     # 12 significant digits: coded -> natural arithmetic leaves 26.000000000000004 on a step grid
-    return {f.name: float(f"{v:.12g}") for f, v in zip(spec.factors, x)}
+    return {f.name: f.label(v) if f.is_categorical else float(f"{v:.12g}") for f, v in zip(spec.factors, x)}
 
 
 def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int = 256) -> list[dict]:
@@ -145,8 +168,12 @@ def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int 
 
 
 def build_window(spec: StudySpec, fit, confidence: float | None = None, set_point: dict | None = None,
-                 mean_only: bool = False, seed: int | None = None) -> ProcessWindow:
-    """Find the largest window and express it in natural units (see :func:`search_window`)."""
+                 mean_only: bool = False, seed: int | None = None, levels: dict | None = None) -> ProcessWindow:
+    """Find the largest window and express it in natural units (see :func:`search_window`).
+
+    ``levels``: ``{categorical factor: level name}`` fixes those factors' levels (``window --level``); a
+    set point may name a categorical factor's level too.
+    """
     confidence = spec.confidence if confidence is None else float(confidence)
     if not 0.0 < confidence < 1.0:
         raise InputError(f"--confidence {confidence:g}: must lie strictly between 0 and 1, e.g. 0.95")
@@ -159,35 +186,49 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              diagnostics=[d.to_dict() for d in fit.diagnostics], safety=spec.has_safety,
                              set_point=set_point, supported=False, advice=sup.advice)
     feas = feasibility_of(spec, fit, mean_only)
+    fixed = dict(levels or {})
     sp = None
     if set_point is not None:
         missing = [f for f in spec.factor_names if f not in set_point]
         if missing:
             raise InputError(f"--set-point: give every factor (missing: {', '.join(missing)})")
-        sp = spec.to_coded([set_point[f] for f in spec.factor_names])[0]
+        for j in spec.categorical:   # a set point's level fixes that factor's level
+            f = spec.factors[j]
+            fixed[f.name] = set_point[f.name] if isinstance(set_point[f.name], str) else f.label(set_point[f.name])
+        sp = spec.to_coded([spec.factors[j].index_of(fixed[f]) if spec.factors[j].is_categorical
+                            else set_point[f] for j, f in enumerate(spec.factor_names)])[0]
         if ((sp < 0) | (sp > 1)).any():
             raise InputError("--set-point: a value lies outside the factor's low..high in study.toml")
     if sp is not None and not spec.linear.feasible(sp)[0]:
         raise InputError("--set-point: it breaks a [[constraint]] in study.toml; choose an allowed set point")
-    res = search_window(spec, feas, confidence, sp, seed)
+    res = search_window(spec, feas, confidence, sp, seed, combos=allowed_combinations(spec, fixed))
     diags = [d.to_dict() for d in fit.diagnostics]
     common = dict(confidence=confidence, diagnostics=diags, mean_only=mean_only, safety=spec.has_safety,
+                  fixed_levels=dict(levels) if levels else None,
                   best_probability=float(res.best_probability) if res.best_probability is not None
                   else None, best_point=_point(spec, res.best_point), set_point=set_point)
     if not res.found:
         msg = (_not_found(spec, res, common["best_point"])
                + _failure_blocks(spec, feas, confidence, res.best_point, seed))
-        return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
+        return ProcessWindow(found=False, min_probability=float(res.min_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
                              message=msg, **common)
     lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
-    lo_n, hi_n = _inward(spec, lo_n, hi_n) or (lo_n, hi_n)  # already on the grid: clears float noise
+    num = spec.numeric
+    box = _inward(spec.numeric_part(), lo_n[num], hi_n[num])  # already on the grid: clears float noise
+    if box is not None:
+        lo_n[num], hi_n[num] = box
     glo_n, ghi_n = guard_band(spec, lo_n, hi_n)
-    factors = [{"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
+    held = res.levels or [()]
+    factors = [{"name": f.name, "levels": sorted({f.levels[c[spec.categorical.index(j)]] for c in held},
+                                                 key=f.levels.index)}
+               if f.is_categorical else
+               {"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
                 "guard_low": float(c), "guard_high": float(e), "tolerance": f.tolerance}
-               for f, a, b, c, e in zip(spec.factors, lo_n, hi_n, glo_n, ghi_n)]
+               for j, (f, a, b, c, e) in enumerate(zip(spec.factors, lo_n, hi_n, glo_n, ghi_n))]
     glo, ghi = spec.to_coded(glo_n)[0], spec.to_coded(ghi_n)[0]
-    inside = glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512) * (ghi - glo)
+    inside = np.vstack([_at_levels(spec, glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512)
+                                   * (ghi - glo), c) for c in held])
     fmap = feas.evaluate(inside, max(confidence, 0.5 + 1e-9))
     share = float(fmap.untrusted.mean())
     extent = judge_extent(float(np.mean(fmap.distance > fmap.extrapolation_distance)),
@@ -198,23 +239,78 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              predicted=[], cautions=cautions(spec, fit, share, mean_only),
                              message=extent.message, untrusted_share=share, supported=False,
                              advice=extent.advice, **common)
+    predicted = _merge_ranges([predicted_ranges(spec, fit.surrogates, _at_levels(spec, glo, c)[0],
+                                                _at_levels(spec, ghi, c)[0], seed) for c in held])
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          constraints=constraint_margins(spec, glo_n, ghi_n),
-                         predicted=predicted_ranges(spec, fit.surrogates, glo, ghi, seed),
+                         predicted=predicted,
                          cautions=(cautions(spec, fit, share, mean_only)
                                    + clipped_guard_notes(spec, lo_n, hi_n)), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
                          volume_share=float(res.volume), **common)
 
 
+def allowed_combinations(spec: StudySpec, fixed: dict | None):
+    """Level combinations of the categorical factors left by ``fixed`` ``{factor: level name}``; None
+    when the study has no categorical factor."""
+    if not spec.categorical:
+        if fixed:
+            raise InputError(f"--level {next(iter(fixed))}: the study has no categorical factor")
+        return None
+    fixed = fixed or {}
+    cat = [spec.factors[j] for j in spec.categorical]
+    for name in fixed:
+        if name not in [f.name for f in cat]:
+            from windowfinder.errors import nearest
+
+            raise InputError(f"--level {name}=...: '{name}' is not a categorical factor; "
+                             + nearest(name, [f.name for f in cat], "categorical factors are"))
+    want = {spec.categorical.index(spec.factor_names.index(n)): spec.factor(n).index_of(v)
+            for n, v in fixed.items()}
+    return [c for c in spec.level_combinations() if all(c[k] == i for k, i in want.items())]
+
+
+def _at_levels(spec: StudySpec, U, combo):
+    """Coded settings ``U`` with the categorical columns set to a level combination."""
+    U = np.array(np.atleast_2d(U), dtype=float)
+    if spec.categorical:
+        U[:, spec.categorical] = spec.level_codes(combo)
+    return U
+
+
+def _merge_ranges(per_level: list[list[dict]]) -> list[dict]:
+    """Predicted ranges over several level combinations: the widest of each bound."""
+    out = [dict(p) for p in per_level[0]]
+    for other in per_level[1:]:
+        for p, q in zip(out, other):
+            for k, pick in (("low", min), ("high", max), ("pi95_low", min), ("pi95_high", max)):
+                p[k] = pick(p[k], q[k])
+    return out
+
+
 def search_window(spec: StudySpec, feas: Feasibility, confidence: float, set_point=None,
-                  seed: int | None = None):
+                  seed: int | None = None, combos=None):
     """The coded-unit window search behind every window figure (``window``, report, campaign log).
 
     Nested over the confidence ladder (never smaller at a lower confidence) and rounded inward to the
     factor steps, each range at least one step wide (:func:`windowfinder.answers.window.find_window`).
+    With categorical factors: one numeric box searched per level combination (``combos``: the ones
+    allowed, default all) and the combinations it holds on (:mod:`windowfinder.answers.levelwindow`).
     """
     from windowfinder.answers.window import find_window
+
+    if spec.categorical:
+        from windowfinder.answers.levelwindow import find_level_window
+
+        sub = spec.numeric_part()
+
+        def snap_num(lower, upper):
+            box = _inward(sub, *_inside_constraints(sub, sub.to_natural(lower)[0], sub.to_natural(upper)[0]))
+            return None if box is None else (sub.to_coded(box[0])[0], sub.to_coded(box[1])[0])
+
+        sp = None if set_point is None else np.asarray(set_point, float)[spec.numeric]
+        return find_level_window(spec, spec.linear.masked(feas.joint), confidence, snap_num, sp,
+                                 spec.seed if seed is None else seed, combos)
 
     def snap(lower, upper):   # guard band inside every constraint between factors, then the step grid
         box = _inward(spec, *_inside_constraints(spec, spec.to_natural(lower)[0], spec.to_natural(upper)[0]))
@@ -233,11 +329,11 @@ def _not_found(spec: StudySpec, res, best_point: dict) -> str:
         lo = spec.to_natural(res.verified_lower)[0]
         hi = spec.to_natural(res.verified_upper)[0]
         narrow = [f"{f.name} {a:.4g} .. {b:.4g} (step {f.step:g})" for f, a, b in zip(spec.factors, lo, hi)
-                  if f.step and _inward_range(f, a, b) is None]
+                  if f.step and not f.is_categorical and _inward_range(f, a, b) is None]
         if narrow:
             return (f"every region reaching P >= {res.confidence:g} is narrower than one step: "
                     f"{'; '.join(narrow)}; refine the step in study.toml or lower --confidence")
-    where = ", ".join(f"{k} = {v:.4g}" for k, v in best_point.items())
+    where = spec.point_text(best_point)
     if res.best_probability >= res.confidence:
         return (f"no box (with its tolerance band) reaches P >= {res.confidence:g}: it holds only at and "
                 f"very near {where} (P = {res.best_probability:.3f}); add runs around there or lower "
@@ -264,6 +360,8 @@ def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: 
     if feas.failure_ is None:
         return ""
     U = qmc.Sobol(spec.d, scramble=True, seed=seed).random(2048)
+    if spec.categorical:   # only the levels exist
+        U = spec.snap_coded(U)
     if best_point is not None:
         U = np.vstack([np.asarray(best_point, float).reshape(1, -1), U])
     _, p_each, p_works, joint, _ = feas._chunks(U)
@@ -271,7 +369,7 @@ def _failure_blocks(spec: StudySpec, feas, confidence: float, best_point, seed: 
     i = int(np.argmax(np.where(limits_only >= confidence, p_works, -1.0)))
     if limits_only[i] < confidence or joint.max() >= confidence:   # limits, or the band, block it
         return ""
-    where = ", ".join(f"{k} = {v:.4g}" for k, v in _point(spec, U[i]).items())
+    where = spec.point_text(_point(spec, U[i]))
     return (f". The limits alone are met with P = {limits_only[i]:.3f} at {where}, but the failure model "
             f"gives P(process works) = {p_works[i]:.3f} there: failed runs are what blocks the window. "
             "Runs that work near there raise it; a failed run that broke a limit can say so in the "
@@ -425,6 +523,7 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
         frame["p_all_limits"] = p
         chosen = knee_point(obj_fn(U)) if pick == "knee" else int(np.argmax(desir(U)))
     frame["balanced_pick"] = np.arange(len(frame)) == chosen
+    frame = spec.labelled(frame)   # categorical factors by level name
     found = bool(res.found and len(frame))
     if found:
         message = (f"{len(frame)} settings on the trade-off front meet all limits with probability "

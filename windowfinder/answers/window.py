@@ -103,6 +103,7 @@ class WindowResult:
     n_evaluations: int = 0
     verified_lower: np.ndarray | None = None
     verified_upper: np.ndarray | None = None
+    levels: list | None = None   # categorical factors: level combinations (index tuples) the box holds on
 
     def to_dict(self) -> dict:
         """JSON-safe dict (arrays as lists, NaN as None)."""

@@ -16,6 +16,7 @@ import numpy as np
 from scipy.stats import qmc
 
 from windowfinder.answers.window import volume_text
+from windowfinder.errors import InputError
 
 NEAR = 0.05  # coded distance counted as "near" the old guard box (common practice, no source)
 
@@ -50,7 +51,7 @@ def shrink_note(spec, feas, old_volume: float, old_guard, new_volume: float, run
     k = int(np.argmin(p_each[i]))
     resp = spec.limited[k]
     x = spec.to_natural(U[i])[0]
-    at = ", ".join(f"{f.name} = {v:.4g}" for f, v in zip(spec.factors, x))
+    at = spec.point_text({f.name: f.label(v) for f, v in zip(spec.factors, x)})
     how = (f"{old_volume / new_volume:.3g}x" if new_volume > 0 else "to no window")
     line = (f"window shrank {how} ({volume_text(old_volume)} -> {volume_text(new_volume)}): "
             f"{resp.name} {resp.limit_text()} binds in the old window (P = {p_each[i, k]:.2f} at {at})")
@@ -64,13 +65,14 @@ def previous_note(spec, feas, path, win, runs) -> str | None:
     try:
         old = json.loads(Path(path).read_text())
         if not (old.get("found") and old.get("confidence") == win.confidence
-                and bool(old.get("mean_only")) == win.mean_only and old.get("set_point") == win.set_point):
+                and bool(old.get("mean_only")) == win.mean_only and old.get("set_point") == win.set_point
+                and old.get("fixed_levels") == getattr(win, "fixed_levels", None)):
             return None
-        by_name = {f["name"]: f for f in old["factors"]}
-        lo = spec.to_coded([by_name[n]["guard_low"] for n in spec.factor_names])[0]
-        hi = spec.to_coded([by_name[n]["guard_high"] for n in spec.factor_names])[0]
+        from windowfinder.answers.results import window_boxes
+
+        lo, hi, _ = window_boxes(spec, old["factors"], guard=True)[0]
         old_volume = float(old["volume_share"])
-    except (OSError, ValueError, KeyError, TypeError):
+    except (OSError, ValueError, KeyError, TypeError, InputError):
         return None
     new_volume = win.volume_share if win.found else 0.0
     return shrink_note(spec, feas, old_volume, (lo, hi), new_volume, runs, spec.seed, who="run")

@@ -70,6 +70,9 @@ def window_table(win) -> str:
         return f"no window: {win.message}"
     lines = [f"{'factor':<16} {'low':>10} {'high':>10}  {'unit':<8} guard band (with tolerance)"]
     for f in win.factors:
+        if "levels" in f:
+            lines.append(f"{f['name']:<16} levels: {', '.join(f['levels'])}")
+            continue
         guard = (f"{_g(f['guard_low'])} .. {_g(f['guard_high'])}" if f.get("tolerance") else "-")
         lines.append(f"{f['name']:<16} {_g(f['low']):>10} {_g(f['high']):>10}  {f['unit']:<8} {guard}")
     lines.append(f"lowest P(all limits met) inside: {win.min_probability:.3f} "
@@ -87,7 +90,8 @@ def window_markdown(win, study_name: str) -> str:
     elif not win.found:
         out += [f"**No window reaches the confidence {win.confidence:g}.** {md(win.message)}", ""]
         if win.best_point:
-            out += ["Best point found: " + ", ".join(f"{md(k)} = {_g(v)}" for k, v in win.best_point.items())
+            out += ["Best point found: " + ", ".join(f"{md(k)} = {md(v) if isinstance(v, str) else _g(v)}"
+                                                     for k, v in win.best_point.items())
                     + f" (P = {_g(win.best_probability, 3)})", ""]
     else:
         basis = "the process mean" if win.mean_only else "each new run (model uncertainty + run-to-run noise)"
@@ -96,14 +100,19 @@ def window_markdown(win, study_name: str) -> str:
                 f"{volume_text(win.volume_share)}.", "",
                 "| factor | low | high | unit | tolerance | guard band |", "|---|---|---|---|---|---|"]
         for f in win.factors:
-            out.append(f"| {md(f['name'])} | {_g(f['low'])} | {_g(f['high'])} | {md(f['unit'])} | "
-                       f"± {_g(f['tolerance'])} | {_g(f['guard_low'])} – {_g(f['guard_high'])} |")
+            if "levels" not in f:
+                out.append(f"| {md(f['name'])} | {_g(f['low'])} | {_g(f['high'])} | {md(f['unit'])} | "
+                           f"± {_g(f['tolerance'])} | {_g(f['guard_low'])} – {_g(f['guard_high'])} |")
+        for f in win.factors:
+            if "levels" in f:
+                out += ["", f"{md(f['name'])} (categorical): the ranges above hold at level(s) "
+                        + ", ".join(f"**{md(v)}**" for v in f["levels"]) + "."]
         if getattr(win, "constraints", None):
             out += ["", "The whole guard band meets every constraint between factors:", ""]
             out += [f"- {c['name']}: {c['text']} (smallest margin {_g(c['smallest_margin'])})"
                     for c in win.constraints]
         out += ["", "Lowest probability at: " + ", ".join(
-            f"{md(k)} = {_g(v)}" for k, v in win.worst_point.items()), "",
+            f"{md(k)} = {md(v) if isinstance(v, str) else _g(v)}" for k, v in win.worst_point.items()), "",
             "## Predicted responses inside the window (guard band included)", "",
             "| response | limit | predicted | 95 % prediction interval | unit |", "|---|---|---|---|---|"]
         for p in win.predicted:

@@ -105,6 +105,13 @@ def compare(entry: dict, window: dict, spec) -> Comparison:
     rows, agree = [], window.get("found", False)
     for f in spec.factors:
         a, b = old.get(f.name, {}), new.get(f.name, {})
+        if f.is_categorical:   # the same levels named
+            same = bool(a and b) and a.get("levels") == b.get("levels")
+            agree = agree and same
+            rows.append({"name": f.name, "unit": "", "record_low": ", ".join(a.get("levels", [])),
+                         "record_high": None, "refit_low": ", ".join(b.get("levels", [])),
+                         "refit_high": None, "same": same})
+            continue
         tol = f.step / 2 if f.step else 0.01 * f.span
         same = bool(a and b) and all(abs(a[k] - b[k]) <= tol + 1e-12 for k in ("low", "high"))
         agree = agree and same

@@ -1,0 +1,105 @@
+"""The window of a study with categorical factors: one numeric box, and the levels on which it holds.
+
+A categorical factor's coded column takes only its level codes, so a box along it is no window. The
+search fixes the categorical columns at each level combination in turn and runs the numeric box search
+there (:func:`windowfinder.answers.window.find_window`); the largest box found is then checked at every
+other combination with the same adversarial verification (:class:`~windowfinder.answers.verifier.
+BoxVerifier`: corners, faces, centre, Sobol points, local search over its guard box). The window is that
+box together with every combination on which its guard box meets the confidence. Its volume is the
+numeric box's share of the numeric factor space times the share of level combinations it holds on.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+from windowfinder.answers.verifier import BoxVerifier, Recorder, volume
+from windowfinder.answers.window import WindowResult, find_window
+
+
+def _embed(spec, U_num, codes):
+    """Full coded settings from numeric columns and the categorical columns' codes."""
+    U_num = np.atleast_2d(np.asarray(U_num, dtype=float))
+    U = np.empty((U_num.shape[0], spec.d))
+    U[:, spec.numeric] = U_num
+    U[:, spec.categorical] = codes
+    return U
+
+
+def _full(spec, v, codes):
+    return None if v is None else _embed(spec, v, codes)[0]
+
+
+def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, combos=None,
+                      n_check=256) -> WindowResult:
+    """Largest numeric box at ``confidence`` and the level combinations on which it holds.
+
+    Parameters
+    ----------
+    spec : StudySpec
+        With at least one categorical factor.
+    prob_fn : callable
+        Joint probability of full coded settings ``(n, d) -> (n,)`` (constraints already masked in).
+    confidence : float
+    snap : callable
+        ``snap(lower, upper)`` of the numeric columns (coded), as for ``find_window``.
+    set_point : ndarray (d_num,) or None
+        Coded set point of the numeric factors.
+    combos : list of tuple or None
+        Level combinations to search (default: all); ``--level`` fixes some.
+
+    Returns
+    -------
+    WindowResult
+        In full coded units; the categorical columns of ``lower``..``upper`` hold the combination the box
+        was found on, ``levels`` lists every combination it holds on (that one first).
+    """
+    combos = list(spec.level_combinations() if combos is None else combos)
+    sub = spec.numeric_part()
+    t = sub.tolerances_coded
+
+    def at(combo):
+        codes = spec.level_codes(combo)
+        return lambda U_num: prob_fn(_embed(spec, U_num, codes))
+
+    results = [find_window(at(c), sub.d, confidence, tolerance=t, set_point=set_point, seed=seed,
+                           nested=True, snap=snap, n_check=n_check) for c in combos]
+    found = [i for i, r in enumerate(results) if r.found]
+    if not found:   # the combination that came closest speaks for all
+        i = int(np.argmax([r.best_probability for r in results]))
+        return _embedded(spec, results[i], combos[i], [], combos)
+    k = max(found, key=lambda i: results[i].volume)
+    best = results[k]
+    held, worst_p, worst_x = [combos[k]], best.min_probability, _full(spec, best.worst_point,
+                                                                        spec.level_codes(combos[k]))
+    for i, c in enumerate(combos):
+        if i == k:
+            continue
+        rec = Recorder(at(c))
+        check = BoxVerifier(rec, sub.d, confidence, t, seed, n_check, 4, 2 ** -4, set_point is not None)
+        if len(check.verify(best.lower, best.upper)):
+            continue
+        held.append(c)
+        X_in, P_in = rec.inside(best.guard_lower, best.guard_upper)
+        j = int(np.argmin(P_in))
+        if P_in[j] < worst_p:
+            worst_p, worst_x = float(P_in[j]), _full(spec, X_in[j], spec.level_codes(c))
+    out = _embedded(spec, best, combos[k], held, combos)
+    out.min_probability, out.worst_point = float(worst_p), worst_x
+    out.volume = float(volume(best.lower, best.upper)) * len(held) / len(spec.level_combinations())
+    names = ["/".join(spec.factors[j].levels[i] for j, i in zip(spec.categorical, c)) for c in held]
+    out.message = (f"window found on level(s) {', '.join(names)}: lowest P = {worst_p:.3g} over the guard "
+                   f"box (confidence {confidence:g})")
+    return out
+
+
+def _embedded(spec, r: WindowResult, combo, held, combos) -> WindowResult:
+    """``r`` (numeric columns) in full coded units with the categorical columns at ``combo``."""
+    codes = spec.level_codes(combo)
+    return WindowResult(
+        r.found, _full(spec, r.lower, codes), _full(spec, r.upper, codes), _full(spec, r.guard_lower, codes),
+        _full(spec, r.guard_upper, codes), r.min_probability, _full(spec, r.worst_point, codes), r.volume,
+        r.confidence, r.best_probability, _full(spec, r.best_point, codes), r.message,
+        _full(spec, r.set_point, codes), _full(spec, r.tolerance, np.zeros(len(spec.categorical))),
+        r.n_evaluations, _full(spec, r.verified_lower, codes), _full(spec, r.verified_upper, codes),
+        list(held))
