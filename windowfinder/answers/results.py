@@ -210,7 +210,7 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
     if not res.found:
         msg = (_not_found(spec, res, common["best_point"])
                + _failure_blocks(spec, feas, confidence, res.best_point, seed))
-        return ProcessWindow(found=False, min_probability=float(res.min_probability or 0.0), factors=[],
+        return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
                              message=msg, **common)
     lo_n, hi_n = spec.to_natural(res.lower)[0], spec.to_natural(res.upper)[0]
