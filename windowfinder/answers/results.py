@@ -239,7 +239,7 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              predicted=[], cautions=cautions(spec, fit, share, mean_only),
                              message=extent.message, untrusted_share=share, supported=False,
                              advice=extent.advice, **common)
-    predicted = _merge_ranges([predicted_ranges(spec, fit.surrogates, _at_levels(spec, glo, c)[0],
+    predicted = merge_ranges([predicted_ranges(spec, fit.surrogates, _at_levels(spec, glo, c)[0],
                                                 _at_levels(spec, ghi, c)[0], seed) for c in held])
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          constraints=constraint_margins(spec, glo_n, ghi_n),
@@ -278,7 +278,7 @@ def _at_levels(spec: StudySpec, U, combo):
     return U
 
 
-def _merge_ranges(per_level: list[list[dict]]) -> list[dict]:
+def merge_ranges(per_level: list[list[dict]]) -> list[dict]:
     """Predicted ranges over several level combinations: the widest of each bound."""
     out = [dict(p) for p in per_level[0]]
     for other in per_level[1:]:

@@ -17,7 +17,7 @@ import pandas as pd
 from scipy.stats import qmc
 
 from windowfinder.errors import InputError
-from windowfinder.inputs.runs import _number, _raw_rows, next_ids
+from windowfinder.inputs.runs import _number, _raw_rows, level_value, next_ids
 from windowfinder.inputs.spec import StudySpec
 
 PLAN_FILE = "testplan.csv"
@@ -61,26 +61,14 @@ def build_testplan(spec: StudySpec, fit, window, existing_ids, runs: int | None 
         raise InputError("no window at this confidence, so nothing to verify; run 'windowfinder window' "
                          "with a lower --confidence or add runs first")
     seed = spec.seed if seed is None else seed
-    d = spec.d
-    lo = np.array([f["low"] for f in window.factors])
-    hi = np.array([f["high"] for f in window.factors])
-    n_corner = 2 ** d if d <= 4 else max(2 * d, 8)
-    if runs is not None:
-        if runs < 2:
-            raise InputError(f"--runs {runs}: a verification plan needs at least 2 runs")
-        centre = min(centre, max(1, runs // 4))
-        n_corner = min(n_corner, runs - centre)
-    mid = (np.array([window.set_point[f] for f in spec.factor_names]) if window.set_point
-           else (lo + hi) / 2)
-    C = _corners(d, n_corner if (d > 4 or n_corner < 2 ** d) else None, seed)
-    parts = [np.repeat(mid[None, :], centre, axis=0), lo + C * (hi - lo)]
-    kinds = ["centre"] * centre + ["corner"] * len(C)
-    extra = 0 if runs is None else runs - centre - len(C)
-    if extra > 0:
-        U = qmc.LatinHypercube(d, seed=seed).random(extra)
-        parts.append(lo + U * (hi - lo))
-        kinds += ["inside"] * extra
-    X = np.clip(spec.round_to_step(np.vstack(parts)), lo, hi)
+    if spec.categorical:   # the plan of the numeric ranges at every level the window names
+        X, kinds, centre, n_corner, extra = _by_level(spec, window, runs, centre, seed)
+    else:
+        lo = np.array([f["low"] for f in window.factors])
+        hi = np.array([f["high"] for f in window.factors])
+        mid = (np.array([window.set_point[f] for f in spec.factor_names]) if window.set_point
+               else (lo + hi) / 2)
+        X, kinds, centre, n_corner, extra = _points(spec, lo, hi, mid, runs, centre, seed)
     order = np.random.default_rng(seed).permutation(len(X))
     X, kinds = X[order], [kinds[i] for i in order]
     frame = pd.DataFrame(X, columns=spec.factor_names)
@@ -91,9 +79,52 @@ def build_testplan(spec: StudySpec, fit, window, existing_ids, runs: int | None 
         med, plo, phi = fit.surrogates.models[r.name].predict_interval(U, level=0.95, noise=True)
         frame[r.name] = np.nan
         frame[f"{r.name}_pred"], frame[f"{r.name}_lo95"], frame[f"{r.name}_hi95"] = med, plo, phi
+    frame = spec.labelled(frame)
+    per = f" at each of {len(X) // max(1, centre + n_corner + max(extra, 0))} level combinations" \
+        if spec.categorical else ""
     msg = (f"{len(frame)} verification runs inside the window ({centre} at the centre, "
-           f"{len(C)} corners{f', {extra} inside' if extra > 0 else ''}), in randomised order")
+           f"{n_corner} corners{f', {extra} inside' if extra > 0 else ''}{per}), in randomised order")
     return TestPlan(frame, msg)
+
+
+def _points(spec: StudySpec, lo, hi, mid, runs, centre, seed):
+    """Centre replicates, corners (and Latin hypercube points inside) of the box ``lo..hi`` (natural)."""
+    d = spec.d
+    n_corner = 2 ** d if d <= 4 else max(2 * d, 8)
+    if runs is not None:
+        if runs < 2:
+            raise InputError(f"--runs {runs}: a verification plan needs at least 2 runs")
+        centre = min(centre, max(1, runs // 4))
+        n_corner = min(n_corner, runs - centre)
+    C = _corners(d, n_corner if (d > 4 or n_corner < 2 ** d) else None, seed)
+    parts = [np.repeat(mid[None, :], centre, axis=0), lo + C * (hi - lo)]
+    kinds = ["centre"] * centre + ["corner"] * len(C)
+    extra = 0 if runs is None else runs - centre - len(C)
+    if extra > 0:
+        U = qmc.LatinHypercube(d, seed=seed).random(extra)
+        parts.append(lo + U * (hi - lo))
+        kinds += ["inside"] * extra
+    X = np.clip(spec.round_to_step(np.vstack(parts)), lo, hi)
+    return X, kinds, centre, len(C), extra
+
+
+def _by_level(spec: StudySpec, window, runs, centre, seed):
+    """:func:`_points` of the numeric factors once per level combination the window names (``runs``
+    counts per combination)."""
+    from windowfinder.answers.results import window_boxes
+
+    sub, num, cat = spec.numeric_part(), spec.numeric, spec.categorical
+    Xs, kinds = [], []
+    for lo_c, hi_c, combo in window_boxes(spec, window.factors):
+        lo, hi = spec.to_natural(lo_c)[0][num], spec.to_natural(hi_c)[0][num]
+        mid = (np.array([window.set_point[spec.factor_names[j]] for j in num]) if window.set_point
+               else (lo + hi) / 2)
+        Xn, k, c, n_corner, extra = _points(sub, lo, hi, mid, runs, centre, seed)
+        X = np.empty((len(Xn), spec.d))
+        X[:, num], X[:, cat] = Xn, np.array(combo, dtype=float)
+        Xs.append(X)
+        kinds += k
+    return np.vstack(Xs), kinds, c, n_corner, extra
 
 
 @dataclass
@@ -135,7 +166,9 @@ def read_filled_plan(path, spec: StudySpec) -> pd.DataFrame:
         where = f"{path.name} line {line} (run {run or '?'})"
         rec = {"run": run}
         for c in need[1:]:
-            rec[c] = _number(cells[col[c]], where, c, allow_blank=c in spec.response_names)
+            f = next((f for f in spec.factors if f.name == c and f.is_categorical), None)
+            rec[c] = (level_value(cells[col[c]], where, f) if f is not None
+                      else _number(cells[col[c]], where, c, allow_blank=c in spec.response_names))
         recs.append(rec)
     frame = pd.DataFrame(recs)
     if frame["run"].duplicated().any():

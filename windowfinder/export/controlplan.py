@@ -65,24 +65,33 @@ def _latent_limits(model, r):
 
 def control_plan(spec, fit, window: dict) -> pd.DataFrame:
     """The control-plan table for ``window`` (window.json content, found) with the models of ``fit``."""
-    from windowfinder.answers.results import predicted_ranges
+    from windowfinder.answers.results import merge_ranges, predicted_ranges, window_boxes
 
     factors = {f["name"]: f for f in window["factors"]}
     sp = window.get("set_point") or {}
-    set_nat = np.array([sp.get(f.name, (factors[f.name]["low"] + factors[f.name]["high"]) / 2)
-                        for f in spec.factors])
+
+    def natural(f, v):   # a categorical factor's level name as its index
+        return float(f.index_of(v)) if f.is_categorical and isinstance(v, str) else v
+
+    set_nat = np.array([natural(f, sp.get(f.name, factors[f.name]["levels"][0] if f.is_categorical else
+                                          (factors[f.name]["low"] + factors[f.name]["high"]) / 2))
+                        for f in spec.factors], dtype=float)
     set_nat = spec.round_to_step(set_nat[None, :])[0]
     worst = window.get("worst_point") or {}
-    worst_nat = np.array([worst.get(f.name, v) for f, v in zip(spec.factors, set_nat)])
+    worst_nat = np.array([natural(f, worst.get(f.name, v)) for f, v in zip(spec.factors, set_nat)], dtype=float)
     rows = []
     for f, x in zip(spec.factors, set_nat):
         w = factors[f.name]
+        if f.is_categorical:   # the set level; the levels the window holds on in low
+            rows.append({"item": "factor", "name": f.name, "unit": "", "set_point": f.label(x),
+                         "low": ", ".join(w["levels"]), "high": None, "tolerance": 0.0})
+            continue
         rows.append({"item": "factor", "name": f.name, "unit": f.unit, "set_point": float(x),
                      "low": w["low"], "high": w["high"], "tolerance": w.get("tolerance", 0.0),
                      "guard_low": w.get("guard_low", w["low"]), "guard_high": w.get("guard_high", w["high"])})
-    glo = spec.to_coded([factors[f.name].get("guard_low", factors[f.name]["low"]) for f in spec.factors])[0]
-    ghi = spec.to_coded([factors[f.name].get("guard_high", factors[f.name]["high"]) for f in spec.factors])[0]
-    ranges = {p["response"]: p for p in predicted_ranges(spec, fit.surrogates, glo, ghi, spec.seed)}
+    ranges = {p["response"]: p for p in merge_ranges([
+        predicted_ranges(spec, fit.surrogates, glo, ghi, spec.seed)
+        for glo, ghi, _ in window_boxes(spec, window["factors"], guard=True)])}
     U = spec.to_coded(np.vstack([set_nat, worst_nat]))
     for r in spec.limited:
         m = fit.surrogates.models[r.name]
