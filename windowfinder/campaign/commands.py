@@ -192,7 +192,8 @@ class CommandEvaluator:
             buf = io.StringIO()
             w = csv.writer(buf, lineterminator="\n")
             w.writerow(["run", *self.factors])
-            w.writerow([run, *(repr(float(settings[f])) for f in self.factors)])
+            w.writerow([run, *(settings[f] if isinstance(settings[f], str) else repr(float(settings[f]))
+                               for f in self.factors)])   # a categorical factor by its level name
             inp.write_text(buf.getvalue(), encoding="utf-8")
             argv = [a.replace("{in}", str(inp)).replace("{out}", str(out)) for a in self.argv]
             failure = self._execute(argv, folder)

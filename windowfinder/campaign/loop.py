@@ -215,7 +215,9 @@ class Campaign:
         for rec in rows.to_dict("records"):
             run = str(rec["run"])
             ledger.issued.setdefault(run, rec)
-            settings = {f: float(rec[f]) for f in spec.factor_names}
+            # a categorical factor's setting goes to the simulator as its level name
+            settings = {f.name: f.label(rec[f.name]) if f.is_categorical else float(rec[f.name])
+                        for f in spec.factors}
             pending[engine.submit(self.evaluator, run, settings, run_seed(spec.seed, run))] = run
         for fut in engine.as_completed(pending):
             run = pending[fut]
@@ -340,7 +342,7 @@ def _proposals(study: Study, frame, count: int, aim: str) -> pd.DataFrame:
     if missing:
         raise ValueError(f"the proposer's frame lacks factor column(s) {', '.join(missing)}")
     frame = frame.head(count)
-    X = frame[spec.factor_names].to_numpy(dtype=float)
+    X = spec.level_indices(frame)[spec.factor_names].to_numpy(dtype=float)
     if not np.isfinite(X).all():
         raise ValueError("the proposer returned settings that are not finite numbers")
     out = pd.DataFrame(spec.round_to_step(X).reshape(-1, spec.d), columns=spec.factor_names)

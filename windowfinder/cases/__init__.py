@@ -38,7 +38,7 @@ from types import ModuleType
 from windowfinder.errors import InputError
 
 #: The bundled cases, in the order they are shown to users.
-CASES: tuple[str, ...] = ("reactor", "spotweld", "tempering")
+CASES: tuple[str, ...] = ("reactor", "spotweld", "tempering", "lasercut")
 
 
 class RunFailed(Exception):

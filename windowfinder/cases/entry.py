@@ -32,8 +32,11 @@ from windowfinder.errors import InputError
 from windowfinder.inputs.runs import write_atomic
 
 
-def read_settings(path: Path, factors: list[str]) -> list[tuple[str, dict[str, float]]]:
-    """Rows of ``IN`` as ``(run id, {factor: value})``; raises InputError naming the row or column."""
+def read_settings(path: Path, factors: list[str], levels=None) -> list[tuple[str, dict[str, float]]]:
+    """Rows of ``IN`` as ``(run id, {factor: value})``; raises InputError naming the row or column.
+
+    ``levels``: ``{factor: level names}`` of categorical factors, whose cells are level names."""
+    levels = levels or {}
     try:
         with open(path, newline="", encoding="utf-8") as fh:
             rows = list(csv.DictReader(fh))
@@ -50,6 +53,12 @@ def read_settings(path: Path, factors: list[str]) -> list[tuple[str, dict[str, f
     for i, row in enumerate(rows, start=2):
         settings = {}
         for f in factors:
+            if f in levels:
+                if row[f] not in levels[f]:
+                    raise InputError(f"{path}: row {i}, column '{f}' = {row[f]!r} is not one of its levels "
+                                     f"{', '.join(levels[f])}")
+                settings[f] = row[f]
+                continue
             try:
                 settings[f] = float(row[f])
             except (TypeError, ValueError):
@@ -96,7 +105,7 @@ def main(simulator: ModuleType, name: str, argv=None) -> int:
                                                           "and its run id (default: fresh noise)")
     args = p.parse_args(argv)
     try:
-        rows = read_settings(args.input, list(simulator.FACTORS))
+        rows = read_settings(args.input, list(simulator.FACTORS), getattr(simulator, "LEVELS", None))
     except InputError as e:
         print(f"error: {e}", file=sys.stderr)
         return 2

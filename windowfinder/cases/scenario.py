@@ -93,8 +93,11 @@ class Scenario:
             raise ValueError("give a Noise for every response")
         #: ``{response: (min or None, max or None)}`` from study.toml
         self.limits = {r["name"]: (r.get("min"), r.get("max")) for r in study["response"]}
-        #: factor ranges from study.toml, shape (d, 2), natural units
-        self.bounds = np.array([[f["low"], f["high"]] for f in study["factor"]], dtype=float)
+        #: ``{factor: (level names)}`` of the categorical factors; ``X`` holds their level index
+        self.levels = {f["name"]: tuple(f["levels"]) for f in study["factor"] if "levels" in f}
+        #: factor ranges from study.toml, shape (d, 2), natural units (0 .. L-1 for a categorical one)
+        self.bounds = np.array([[0.0, len(f["levels"]) - 1.0] if "levels" in f else [f["low"], f["high"]]
+                                for f in study["factor"]], dtype=float)
 
     def _as_matrix(self, X) -> np.ndarray:
         X = np.atleast_2d(np.asarray(X, dtype=float))
@@ -111,7 +114,8 @@ class Scenario:
         return {**values, "works": works}
 
     def evaluate(self, settings: Mapping[str, float], seed: int | None = None) -> dict[str, float]:
-        """One run with noise at ``settings`` (factor name -> natural value; other keys are ignored).
+        """One run with noise at ``settings`` (factor name -> natural value, a categorical factor's level
+        name; other keys are ignored).
 
         ``seed=None`` draws fresh noise each call, like a real run; an int makes the run reproducible.
 
@@ -127,6 +131,10 @@ class Scenario:
             if name not in settings:
                 raise InputError(f"settings: factor '{name}' is missing; give a value for each of "
                                  f"{', '.join(self.factors)}")
+            if name in self.levels:   # a categorical factor: its level name (or index)
+                value = self._level(name, settings[name])
+                x.append(value)
+                continue
             try:
                 value = float(settings[name])
             except (TypeError, ValueError):
@@ -139,6 +147,15 @@ class Scenario:
         if not bool(np.asarray(out["works"]).ravel()[0]):
             raise RunFailed(self.failure_reason)
         return {r: self.noise[r].draw(float(np.asarray(out[r]).ravel()[0]), rng) for r in self.responses}
+
+    def _level(self, name, value) -> float:
+        levels = self.levels[name]
+        if isinstance(value, str) and value in levels:
+            return float(levels.index(value))
+        if not isinstance(value, str) and float(value) in range(len(levels)):
+            return float(value)
+        raise InputError(f"settings: factor '{name}' = {value!r} is not one of its levels "
+                         f"{', '.join(levels)}")
 
     def feasible(self, X) -> np.ndarray:
         """True (noise-free) "the process works and every limit is met", per row of ``X``."""

@@ -288,6 +288,21 @@ class StudySpec:
                                  math.isnan(v)) else f.label(v) for v in frame[f.name]]
         return frame
 
+    def level_indices(self, frame):
+        """A copy of a table with level names of the categorical factors replaced by their indices (the
+        natural values inside); the inverse of :meth:`labelled`."""
+        frame = frame.copy()
+        for j in self.categorical:
+            f = self.factors[j]
+            if f.name in frame.columns:
+                frame[f.name] = [float(f.index_of(v)) if isinstance(v, str) else v for v in frame[f.name]]
+        return frame
+
+    def coded_point(self, values: dict) -> np.ndarray:
+        """Coded setting of ``{factor: natural value or level name}``."""
+        return self.to_coded([f.index_of(values[f.name]) if f.is_categorical and isinstance(values[f.name], str)
+                              else values[f.name] for f in self.factors])[0]
+
     def point_text(self, values: dict, digits: int = 4) -> str:
         """``a = 1.23, gas = mix``: a setting in natural units for a one-line message."""
         parts = []

@@ -71,7 +71,7 @@ def slice_centre(spec, window=None) -> np.ndarray:
         lo, hi = window.coded_box(spec)
         return (lo + hi) / 2.0
     if window is not None and window.best_point:
-        return spec.to_coded([window.best_point[f] for f in spec.factor_names])[0]
+        return spec.coded_point(window.best_point)
     return np.full(spec.d, 0.5)
 
 

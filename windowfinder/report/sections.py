@@ -79,7 +79,8 @@ def summary(c: Content) -> str:
         out.append(para(f"No window reaches the confidence {win.confidence:g} ({win.message}).", "headline"))
         if win.best_point:
             out.append(para("Most probable setting found: " + ", ".join(
-                f"{k} = {v:.4g} {spec.factor(k).unit}".rstrip() for k, v in win.best_point.items())
+                (f"{k} = {v}" if isinstance(v, str) else f"{k} = {v:.4g} {spec.factor(k).unit}".rstrip())
+                for k, v in win.best_point.items())
                 + f" (P(all limits met) = {win.best_probability:.3f})."))
     else:
         basis = ("the process mean (model uncertainty only)" if win.mean_only
@@ -90,8 +91,7 @@ def summary(c: Content) -> str:
                         f"{volume_text(win.volume_share)}.", "headline"))
         out.append(html_table(tables.window_frame(win), "Process window"))
         if win.worst_point:
-            out.append(para("Lowest probability at: " + ", ".join(
-                f"{k} = {v:.4g}" for k, v in win.worst_point.items()) + "."))
+            out.append(para("Lowest probability at: " + spec.point_text(win.worst_point) + "."))
     if spec.limited:
         out.append(html_table(tables.limit_status(spec, win),
                               "Limits: predicted range inside the window (guard band included)"))
@@ -109,7 +109,7 @@ def summary(c: Content) -> str:
 # ----------------------------------------------------------------------------------------------- data
 def data(c: Content) -> str:
     spec, runs = c.spec, c.study.runs
-    frame = runs.frame
+    frame = spec.labelled(runs.frame)   # categorical factors by level name
     outside = runs.outside()
     n = {k: int((frame["status"] == k).sum()) for k in ("done", "failed", "planned")}
     out = [para(f"{len(frame)} runs: {n['done']} done, {n['failed']} failed, {n['planned']} planned; "
@@ -225,7 +225,10 @@ def maps(c: Content) -> str:
         feas = feasibility_of(spec, c.fit, bool(getattr(win, "mean_only", False)))
     conf = win.confidence if win is not None else spec.confidence
     held = spec.to_natural(centre)[0]
-    pairs = map_pairs(spec, c.influence)
+    pairs = [p for p in map_pairs(spec, c.influence) if not set(p) & set(spec.categorical)]
+    if spec.categorical and len(spec.numeric) < 2:
+        return para("Maps need two numeric factors; this study has one besides its categorical factors. "
+                    "See the window table and trade-off.")
     out = [para("Per pair of factors, first the probability that a "
                 + ("run meets every limit on average (process mean)" if getattr(win, "mean_only", False)
                    else "new run meets every limit") + "; hatched //: uncertain class (between "
@@ -242,26 +245,65 @@ def maps(c: Content) -> str:
                         "held at the " + ("window centre" if win is not None and win.found else
                                           "most probable point found" if win is not None and win.best_point
                                           else "middle of their ranges") + " (" + ", ".join(
-                            f"{f.name} = {v:.4g} {f.unit}".rstrip() for f, v in zip(spec.factors, held))
+                            f"{f.name} = {v:.4g} {f.unit}".rstrip() for f, v in zip(spec.factors, held)
+                            if not f.is_categorical)
                         + "), and runs are projected onto the slice."))
+    if spec.categorical:
+        out.append(para("Categorical factors are never an axis: every pair is mapped at each level (level "
+                        "combination) in turn, with the runs made at that level; the window box is drawn "
+                        "at the levels the window names."))
     if len(pairs) < spec.d * (spec.d - 1) // 2:
         out.append(para(f"{spec.d} factors: maps shown for the pairs among the {len(set(sum(pairs, ())))} "
                         "factors of largest total influence."))
-    runs = c.study.runs.completed()
     for pair in pairs:
-        i, j = pair
-        grid = slice_grid(spec, c.fit, pair, centre, confidence=conf, feasibility=feas,
-                          mean_only=bool(getattr(win, "mean_only", False)))
-        fig = slice_figure(spec, c.fit, win, pair, runs, c.suggestions, grid, record=c.record)
-        fx, fy = spec.factors[i], spec.factors[j]
-        shown = [r.name for r in (spec.limited or spec.goals or spec.responses)]
-        alt = (f"Maps over {fx.name} and {fy.name}: predicted {', '.join(shown)}"
-               + (": the probability of meeting all limits with hatched uncertain and untrusted "
-                  "regions, then each limit's margin in predictive standard deviations" if spec.limited
-                  else "")
-               + "; window box and runs marked.")
-        out.append(f"<h3>{esc(fx.name)} × {esc(fy.name)}</h3>" + image(figure_png(fig), alt))
+        for combo, at, runs, sug, win_at in _level_slices(c, centre):
+            out.append(_map_html(c, pair, at, runs, sug, win_at, conf, feas, combo))
     return "\n".join(out)
+
+
+def _level_slices(c: Content, centre):
+    """``(combo, centre, runs, suggestions, window)`` per level combination of the categorical factors:
+    the slice point at that level, the runs and suggestions made there, the window where it holds."""
+    spec, win = c.spec, c.window
+    runs = c.study.runs.completed()
+    if not spec.categorical:
+        yield (), centre, runs, c.suggestions, win
+        return
+    from windowfinder.answers.results import window_boxes
+
+    held = ({b[2] for b in window_boxes(spec, win.factors)} if win is not None and win.found else set())
+    sug = c.suggestions
+    for combo in spec.level_combinations():
+        at = centre.copy()
+        at[spec.categorical] = spec.level_codes(combo)
+        names = [spec.factors[j].levels[k] for j, k in zip(spec.categorical, combo)]
+        cat = [spec.factor_names[j] for j in spec.categorical]
+        here = np.all(runs[cat].to_numpy(float) == np.array(combo, float), axis=1) if len(runs) else []
+        sug_here = None
+        if sug is not None and len(sug):
+            sug_here = sug[np.all(sug[cat].astype(str).to_numpy() == np.array(names), axis=1)]
+        shown = win if combo in held else (None if win is None or win.found else win)
+        yield combo, at, runs[here] if len(runs) else runs, sug_here, shown
+
+
+def _map_html(c: Content, pair, centre, runs, suggestions, win, conf, feas, combo) -> str:
+    spec = c.spec
+    i, j = pair
+    grid = slice_grid(spec, c.fit, pair, centre, confidence=conf, feasibility=feas,
+                      mean_only=bool(getattr(win, "mean_only", False)))
+    fig = slice_figure(spec, c.fit, win, pair, runs, suggestions, grid, record=c.record)
+    fx, fy = spec.factors[i], spec.factors[j]
+    shown = [r.name for r in (spec.limited or spec.goals or spec.responses)]
+    alt = (f"Maps over {fx.name} and {fy.name}: predicted {', '.join(shown)}"
+           + (": the probability of meeting all limits with hatched uncertain and untrusted "
+              "regions, then each limit's margin in predictive standard deviations" if spec.limited
+              else "")
+           + "; window box and runs marked.")
+    level = ", ".join(f"{spec.factors[k].name} = {spec.factors[k].levels[v]}"
+                      for k, v in zip(spec.categorical, combo))
+    alt += f" At {level}." if level else ""
+    return (f"<h3>{esc(fx.name)} × {esc(fy.name)}{(' at ' + esc(level)) if level else ''}</h3>"
+            + image(figure_png(fig), alt))
 
 
 # ------------------------------------------------------------------------------------------ trade-off

@@ -10,7 +10,9 @@ import pandas as pd
 
 def window_frame(window) -> pd.DataFrame:
     """Factor ranges of a found window, with tolerance and guard band."""
-    rows = [{"factor": f["name"], "low": f["low"], "high": f["high"], "unit": f["unit"],
+    rows = [{"factor": f["name"], "low": "levels: " + ", ".join(f["levels"]), "high": "", "unit": "",
+             "tolerance (±)": 0.0, "guard band": ""} if "levels" in f else
+            {"factor": f["name"], "low": f["low"], "high": f["high"], "unit": f["unit"],
              "tolerance (±)": f.get("tolerance") or 0.0,
              "guard band": f"{f['guard_low']:.4g} – {f['guard_high']:.4g}"} for f in window.factors]
     return pd.DataFrame(rows, columns=["factor", "low", "high", "unit", "tolerance (±)", "guard band"])

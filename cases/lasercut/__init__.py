@@ -1,0 +1,1 @@
+"""Demo case: laser cutting with nitrogen or oxygen assist gas (see README.md)."""
