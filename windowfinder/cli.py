@@ -66,7 +66,8 @@ def cmd_check(args):
     st = runs.status.value_counts()
     print(f"study: {spec.name}  ({study.dir / 'study.toml'})")
     print(f"factors ({spec.d}): " + ", ".join(
-        f"{f.name} [{f.low:g}, {f.high:g}] {f.unit}".rstrip() for f in spec.factors))
+        (f"{f.name} [{' | '.join(f.levels)}]" if f.is_categorical else f"{f.name} [{f.low:g}, {f.high:g}] {f.unit}".rstrip())
+        for f in spec.factors))
     for r in spec.responses:
         tag = " (safety)" if r.is_safety else ""
         print(f"response {r.name}: goal {r.goal}, limit {r.limit_text()}{tag}")
@@ -236,7 +237,8 @@ def cmd_tradeoff(args):
     if pick is not None:
         spec = study.spec
         print(f"balanced pick ({tr.pick_method}): " + ", ".join(
-            f"{f.name} = {pick[f.name]:.4g} {f.unit}".rstrip() for f in spec.factors))
+            (f"{f.name} = {pick[f.name]}" if f.is_categorical else f"{f.name} = {pick[f.name]:.4g} {f.unit}".rstrip())
+            for f in spec.factors))
         for r in spec.responses:
             print(f"  {r.name:<16} {pick[r.name + '_pred']:.4g} {r.unit} (95% PI "
                   f"{pick[r.name + '_lo95']:.4g} .. {pick[r.name + '_hi95']:.4g})")
@@ -393,7 +395,8 @@ def cmd_verified(args):
         print(f"window of record, verified {entry['verified_utc']} with {entry['runs']} runs "
               f"(plan {entry['plan']}, sha256 {entry['plan_sha256'][:12]}...): {entry['verdict']}")
         for f in w["factors"]:
-            print(f"  {f['name']:<16} {f['low']:.5g} .. {f['high']:.5g} {f['unit']}")
+            print(f"  {f['name']:<16} levels {', '.join(f['levels'])}" if "levels" in f else
+                  f"  {f['name']:<16} {f['low']:.5g} .. {f['high']:.5g} {f['unit']}")
         print(f"  confidence {w['confidence']:g} for {w['provenance']['confidence_applies_to']}; "
               f"lowest P(all limits met) inside {w['min_probability']:.3f}")
     last = rec["history"][-1]
