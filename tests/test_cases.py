@@ -17,6 +17,7 @@ INTERIOR = {
     "reactor": {"temperature": 85.0, "time": 60.0, "catalyst": 1.5},
     "spotweld": {"current": 9.0, "weld_time": 200.0, "force": 3.0},
     "tempering": {"temperature": 540.0, "time": 2.0},
+    "lasercut": {"power": 4.5, "speed": 3.0, "gas": "oxygen"},
 }
 
 
@@ -59,6 +60,7 @@ def test_unknown_case_is_a_one_line_input_error():
 # Key sets of the study.toml contract in docs (DESIGN.md, "File contracts").
 STUDY_KEYS = {"name", "confidence", "seed"}
 FACTOR_KEYS = {"name", "unit", "low", "high", "step", "tolerance"}
+CATEGORICAL_KEYS = {"name", "levels"}
 RESPONSE_KEYS = {"name", "unit", "goal", "target", "min", "max", "kind", "transform", "bounds"}
 
 
@@ -66,10 +68,13 @@ RESPONSE_KEYS = {"name", "unit", "goal", "target", "min", "max", "kind", "transf
 def test_study_file_follows_the_contract(name):
     with open(case_dir(name) / "study.toml", "rb") as fh:
         study = tomllib.load(fh)
-    assert set(study) == {"study", "factor", "response"}
+    assert {"study", "factor", "response"} <= set(study) <= {"study", "factor", "response", "constraint"}
     assert set(study["study"]) == STUDY_KEYS
     assert 0.5 < study["study"]["confidence"] < 1
     for f in study["factor"]:
+        if "levels" in f:   # a categorical factor: named levels, no range
+            assert set(f) == CATEGORICAL_KEYS and len(set(f["levels"])) == len(f["levels"]) >= 2
+            continue
         assert {"name", "unit", "low", "high"} <= set(f) <= FACTOR_KEYS
         assert f["low"] < f["high"]
     for r in study["response"]:
@@ -268,6 +273,9 @@ def test_true_window_is_a_proper_curved_part_of_the_space(name):
     # Brute force on a full grid over the study's factor ranges.
     sim = load_simulator(name)
     X = grid(sim.BOUNDS, 30 if len(sim.FACTORS) == 3 else 150)
+    for j, f in enumerate(sim.FACTORS):   # a categorical factor: its levels only (level index)
+        if f in getattr(sim, "LEVELS", {}):
+            X = np.unique(np.column_stack([X[:, :j], np.round(X[:, j]), X[:, j + 1:]]), axis=0)
     ok = sim.feasible(X)
     share = ok.mean()
     assert 0.05 <= share <= 0.60, share

@@ -100,7 +100,11 @@ class Scenario:
                                 for f in study["factor"]], dtype=float)
 
     def _as_matrix(self, X) -> np.ndarray:
-        X = np.atleast_2d(np.asarray(X, dtype=float))
+        X = np.atleast_2d(np.asarray(X, dtype=object))
+        for j, name in enumerate(self.factors[:X.shape[1]]):
+            if name in self.levels:   # level names -> level index
+                X[:, j] = [self._level(name, v) for v in X[:, j]]
+        X = X.astype(float)
         if X.shape[1] != len(self.factors):
             raise ValueError(f"X needs {len(self.factors)} columns ({', '.join(self.factors)}), "
                              f"got {X.shape[1]}")
@@ -152,10 +156,13 @@ class Scenario:
         levels = self.levels[name]
         if isinstance(value, str) and value in levels:
             return float(levels.index(value))
-        if not isinstance(value, str) and float(value) in range(len(levels)):
-            return float(value)
-        raise InputError(f"settings: factor '{name}' = {value!r} is not one of its levels "
-                         f"{', '.join(levels)}")
+        try:
+            if not isinstance(value, str) and float(value) in range(len(levels)):
+                return float(value)
+        except (TypeError, ValueError):
+            pass
+        raise InputError(f"settings: factor '{name}' = {value!r} is neither one of its levels "
+                         f"({', '.join(levels)}) nor a finite level index")
 
     def feasible(self, X) -> np.ndarray:
         """True (noise-free) "the process works and every limit is met", per row of ``X``."""
