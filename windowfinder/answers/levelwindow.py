@@ -4,9 +4,12 @@ A categorical factor's coded column takes only its level codes, so a box along i
 search fixes the categorical columns at each level combination in turn and runs the numeric box search
 there (:func:`windowfinder.answers.window.find_window`); the largest box found is then checked at every
 other combination with the same adversarial verification (:class:`~windowfinder.answers.verifier.
-BoxVerifier`: corners, faces, centre, Sobol points, local search over its guard box). The window is that
-box together with every combination on which its guard box meets the confidence. Its volume is the
-numeric box's share of the numeric factor space times the share of level combinations it holds on.
+BoxVerifier`: corners, faces, centre, Sobol points, local search over its guard box). A box found at one
+level is tight there, so it seldom holds at another even when the levels behave alike; hence one more
+search runs on the lowest probability over all combinations, ``min_c P(x, c)``, whose boxes hold on every
+combination. The window is the candidate of largest volume, together with every combination on which its
+guard box meets the confidence. Its volume is the numeric box's share of the numeric factor space times
+the share of level combinations it holds on.
 """
 
 from __future__ import annotations
@@ -62,12 +65,38 @@ def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, c
         codes = spec.level_codes(combo)
         return lambda U_num: prob_fn(_embed(spec, U_num, codes))
 
-    results = [find_window(at(c), sub.d, confidence, tolerance=t, set_point=set_point, seed=seed,
-                           nested=True, snap=snap, n_check=n_check) for c in combos]
+    search = dict(tolerance=t, set_point=set_point, seed=seed, nested=True, snap=snap, n_check=n_check)
+    results = [find_window(at(c), sub.d, confidence, **search) for c in combos]
     found = [i for i, r in enumerate(results) if r.found]
     if not found:   # the combination that came closest speaks for all
         i = int(np.argmax([r.best_probability for r in results]))
         return _embedded(spec, results[i], combos[i], [], combos)
+    single = _spread(spec, results, combos, found, confidence, t, seed, n_check, set_point, at)
+    if len(combos) < 2:
+        return single
+    fns = [at(c) for c in combos]
+    joint = find_window(lambda U: np.min([f(U) for f in fns], axis=0), sub.d, confidence, **search)
+    if not joint.found or volume(joint.lower, joint.upper) * len(combos) <= single.volume * \
+            len(spec.level_combinations()):
+        return single
+    x = joint.worst_point
+    c = combos[int(np.argmin([f(x[None, :])[0] for f in fns]))]
+    out = _embedded(spec, joint, combos[0], combos, combos)
+    out.worst_point = _full(spec, x, spec.level_codes(c))
+    out.volume = float(volume(joint.lower, joint.upper)) * len(combos) / len(spec.level_combinations())
+    out.message = _message(spec, combos, joint.min_probability, confidence)
+    return out
+
+
+def _message(spec, held, worst_p, confidence) -> str:
+    names = ["/".join(spec.factors[j].levels[i] for j, i in zip(spec.categorical, c)) for c in held]
+    return (f"window found on level(s) {', '.join(names)}: lowest P = {worst_p:.3g} over the guard box "
+            f"(confidence {confidence:g})")
+
+
+def _spread(spec, results, combos, found, confidence, t, seed, n_check, set_point, at) -> WindowResult:
+    """The largest single-combination box, with every other combination its guard box holds on."""
+    sub = spec.numeric_part()
     k = max(found, key=lambda i: results[i].volume)
     best = results[k]
     held, worst_p, worst_x = [combos[k]], best.min_probability, _full(spec, best.worst_point,
@@ -87,9 +116,7 @@ def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, c
     out = _embedded(spec, best, combos[k], held, combos)
     out.min_probability, out.worst_point = float(worst_p), worst_x
     out.volume = float(volume(best.lower, best.upper)) * len(held) / len(spec.level_combinations())
-    names = ["/".join(spec.factors[j].levels[i] for j, i in zip(spec.categorical, c)) for c in held]
-    out.message = (f"window found on level(s) {', '.join(names)}: lowest P = {worst_p:.3g} over the guard "
-                   f"box (confidence {confidence:g})")
+    out.message = _message(spec, held, worst_p, confidence)
     return out
 
 
