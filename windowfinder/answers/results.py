@@ -131,8 +131,8 @@ def window_boxes(spec: StudySpec, factors: list[dict], guard: bool = False) -> l
     for j, f in enumerate(spec.factors):
         if not f.is_categorical:
             e = by_name[f.name]
-            lo[j] = f.to_coded(e.get("guard_low", e["low"]) if guard else e["low"])
-            hi[j] = f.to_coded(e.get("guard_high", e["high"]) if guard else e["high"])
+            lo[j] = f.to_coded(e["guard_low"] if guard and "guard_low" in e else e["low"])
+            hi[j] = f.to_coded(e["guard_high"] if guard and "guard_high" in e else e["high"])
     choices = [[spec.factors[j].index_of(v) for v in by_name[spec.factors[j].name]["levels"]]
                for j in spec.categorical]
     import itertools
