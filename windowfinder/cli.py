@@ -138,23 +138,31 @@ def format_diagnostics(res, spec) -> str:
     return "\n".join(lines)
 
 
+def _pairs(items, option: str, example: str):
+    """``NAME=VALUE`` items of an option as ``(item, name, value)``; one line for a malformed item."""
+    out = []
+    for it in items:
+        name, sep, value = it.partition("=")
+        if not sep:
+            raise InputError(f"{option} '{it}': write NAME=VALUE, e.g. {example}")
+        out.append((it, name.strip(), value))
+    return out
+
+
 def _set_point(items, spec):
     if not items:
         return None
     out = {}
-    for it in items:
-        name, sep, value = it.partition("=")
-        if not sep:
-            raise InputError(f"--set-point '{it}': write NAME=VALUE, e.g. {spec.factor_names[0]}=50")
-        f = spec.factor(name.strip())
+    for it, name, value in _pairs(items, "--set-point", f"{spec.factor_names[0]}=50"):
+        f = spec.factor(name)
         if f.is_categorical:   # a level name
             out[f.name] = f.levels[f.index_of(value.strip())]
             continue
         try:
-            out[name.strip()] = float(value)
+            out[name] = float(value)
         except ValueError:
             raise InputError(f"--set-point '{it}': '{value}' is not a number") from None
-        if not math.isfinite(out[name.strip()]):
+        if not math.isfinite(out[name]):
             raise InputError(f"--set-point '{it}': '{value}' is not a finite number")
     return out
 
@@ -165,12 +173,7 @@ def _levels(items, spec):
 
     if not items:
         return None
-    out = {}
-    for it in items:
-        name, sep, value = it.partition("=")
-        if not sep:
-            raise InputError(f"--level '{it}': write FACTOR=LEVEL, e.g. gas=mix")
-        out[name.strip()] = value.strip()
+    out = {name: value.strip() for _, name, value in _pairs(items, "--level", "gas=mix")}
     try:   # names and levels checked here, one line each
         allowed_combinations(spec, out)
     except InputError as err:
