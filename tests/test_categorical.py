@@ -249,6 +249,15 @@ def test_classical_design_is_replicated_per_level(tmp_path):
         st.design("space-filling", runs=12, blocks=2)
 
 
+def test_designs_added_in_turn_stay_balanced(tmp_path):
+    # a campaign tops up one run at a time: each goes to the level with the fewest runs so far
+    st = Study.load(_study(tmp_path, HEAD + LINEAR_RESPONSE))
+    for _ in range(5):
+        st.add_runs(st.design("space-filling", runs=1))
+    counts = st.runs.frame["gas"].value_counts()
+    assert sorted(counts.tolist()) == [2, 3]
+
+
 def test_constrained_design_is_balanced_and_inside(tmp_path):
     text = HEAD + LINEAR_RESPONSE + '\n[[constraint]]\nname = "c"\nterms = { a = 1.0, b = 1.0 }\nmax = 12\n'
     st = Study.load(_study(tmp_path, text))

@@ -207,10 +207,13 @@ class Study:
         if n is not None and method not in ("space-filling", "sobol") and int(n) % k:
             raise InputError(f"--runs {n}: {method} is replicated once per level combination ({k}); give a "
                              f"multiple of {k} or leave --runs unset")
-        per = [None] * k if n is None else [int(n) // k + (i < int(n) % k) for i in range(k)]
+        # the runs that do not split evenly go to the combinations with the fewest runs in the table
+        # so far, so that designs added in turn (a campaign's top-ups) stay balanced too
+        have = self.runs.X(self.runs.frame)[:, spec.categorical] if len(self.runs) else np.empty((0, 1))
+        rank = np.argsort([int(np.all(have == np.array(c, float), axis=1).sum()) for c in combos], kind="stable")
+        first = set(rank[: int(n) % k].tolist()) if n is not None else set()
+        per = [None] * k if n is None else [int(n) // k + (i in first) for i in range(k)]
         cen = [centre // k + (i < centre % k) for i in range(k)]
-        if n is not None and min(per) < 1:
-            raise InputError(f"--runs {n}: fewer runs than the {k} level combinations; give at least {k}")
         parts, notes = [], []
         if method == "space-filling" and not spec.constraints and len(set(per)) == 1:
             from windowfinder.inputs.slices import sliced_latin_hypercube
@@ -227,6 +230,10 @@ class Study:
             notes.append(f"sliced Latin hypercube: {per[0]} runs per level combination ({k} slices)")
         else:
             for i in range(k):
+                if per[i] == 0:   # fewer runs than combinations: only centre runs (if any) here
+                    c = sub.round_to_step(sub.to_natural(np.full((1, d_num), 0.5)))
+                    parts.append(np.repeat(c, cen[i], axis=0))
+                    continue
                 f = inner.design(method, runs=per[i], centre=cen[i], seed=seed + i)
                 parts.append(f[sub.factor_names].to_numpy(dtype=float))
                 notes += [x for x in f.attrs.get("notes", []) if x not in notes]
