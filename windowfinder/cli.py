@@ -169,7 +169,7 @@ def _set_point(items, spec):
 
 def _levels(items, spec):
     """``--level gas=mix``: ``{factor: level}`` of categorical factors, checked before any fit."""
-    from windowfinder.answers.results import allowed_combinations
+    from windowfinder.answers.levelwindow import allowed_combinations
 
     if not items:
         return None

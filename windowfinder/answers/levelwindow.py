@@ -14,10 +14,17 @@ the share of level combinations it holds on.
 
 from __future__ import annotations
 
+import itertools
+from typing import TYPE_CHECKING
+
 import numpy as np
 
 from windowfinder.answers.verifier import BoxVerifier, Recorder, volume
 from windowfinder.answers.window import WindowResult, find_window
+from windowfinder.errors import InputError, nearest
+
+if TYPE_CHECKING:
+    from windowfinder.inputs.spec import StudySpec
 
 
 def _embed(spec, U_num, codes):
@@ -130,3 +137,64 @@ def _embedded(spec, r: WindowResult, combo, held, combos) -> WindowResult:
         _full(spec, r.set_point, codes), _full(spec, r.tolerance, np.zeros(len(spec.categorical))),
         r.n_evaluations, _full(spec, r.verified_lower, codes), _full(spec, r.verified_upper, codes),
         list(held))
+
+
+# -- level combinations of a window (window.json entries, --level) ------------------------------
+def window_boxes(spec: StudySpec, factors: list[dict], guard: bool = False) -> list[tuple]:
+    """``(lower, upper, combo)`` in coded units for every level combination a window names (window.json
+    ``factors`` entries: numeric ``low``/``high``, categorical ``levels``); one box without categorical
+    factors (``combo = ()``)."""
+    by_name = {f["name"]: f for f in factors}
+    lo = np.zeros(spec.d)
+    hi = np.zeros(spec.d)
+    for j, f in enumerate(spec.factors):
+        if not f.is_categorical:
+            e = by_name[f.name]
+            lo[j] = f.to_coded(e["guard_low"] if guard and "guard_low" in e else e["low"])
+            hi[j] = f.to_coded(e["guard_high"] if guard and "guard_high" in e else e["high"])
+    choices = [[spec.factors[j].index_of(v) for v in by_name[spec.factors[j].name]["levels"]]
+               for j in spec.categorical]
+    out = []
+    for combo in itertools.product(*choices):
+        a, b = at_levels(spec, lo, combo)[0], at_levels(spec, hi, combo)[0]
+        out.append((a, b, tuple(combo)))
+    return out
+
+
+
+def allowed_combinations(spec: StudySpec, fixed: dict | None):
+    """Level combinations of the categorical factors left by ``fixed`` ``{factor: level name}``; None
+    when the study has no categorical factor."""
+    if not spec.categorical:
+        if fixed:
+            raise InputError(f"--level {next(iter(fixed))}: the study has no categorical factor")
+        return None
+    fixed = fixed or {}
+    cat = [spec.factors[j] for j in spec.categorical]
+    for name in fixed:
+        if name not in [f.name for f in cat]:
+            raise InputError(f"--level {name}=...: '{name}' is not a categorical factor; "
+                             + nearest(name, [f.name for f in cat], "categorical factors are"))
+    want = {spec.categorical.index(spec.factor_names.index(n)): spec.factor(n).index_of(v)
+            for n, v in fixed.items()}
+    return [c for c in spec.level_combinations() if all(c[k] == i for k, i in want.items())]
+
+
+
+def at_levels(spec: StudySpec, U, combo):
+    """Coded settings ``U`` with the categorical columns set to a level combination."""
+    U = np.array(np.atleast_2d(U), dtype=float)
+    if spec.categorical:
+        U[:, spec.categorical] = spec.level_codes(combo)
+    return U
+
+
+
+def merge_ranges(per_level: list[list[dict]]) -> list[dict]:
+    """Predicted ranges over several level combinations: the widest of each bound."""
+    out = [dict(p) for p in per_level[0]]
+    for other in per_level[1:]:
+        for p, q in zip(out, other):
+            for k, pick in (("low", min), ("high", max), ("pi95_low", min), ("pi95_high", max)):
+                p[k] = pick(p[k], q[k])
+    return out

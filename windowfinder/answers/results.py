@@ -16,6 +16,7 @@ from scipy.stats import qmc
 
 from windowfinder.errors import InputError
 from windowfinder.answers.feasibility import Feasibility, extrapolation_threshold
+from windowfinder.answers.levelwindow import allowed_combinations, at_levels, merge_ranges, window_boxes
 from windowfinder.answers.support import judge_extent, runs_needed, study_folder, support_of
 from windowfinder.inputs.constraints import box_range
 from windowfinder.inputs.spec import StudySpec
@@ -121,29 +122,6 @@ class ProcessWindow:
         return window_boxes(spec, self.factors, guard)[0][:2]
 
 
-def window_boxes(spec: StudySpec, factors: list[dict], guard: bool = False) -> list[tuple]:
-    """``(lower, upper, combo)`` in coded units for every level combination a window names (window.json
-    ``factors`` entries: numeric ``low``/``high``, categorical ``levels``); one box without categorical
-    factors (``combo = ()``)."""
-    by_name = {f["name"]: f for f in factors}
-    lo = np.zeros(spec.d)
-    hi = np.zeros(spec.d)
-    for j, f in enumerate(spec.factors):
-        if not f.is_categorical:
-            e = by_name[f.name]
-            lo[j] = f.to_coded(e["guard_low"] if guard and "guard_low" in e else e["low"])
-            hi[j] = f.to_coded(e["guard_high"] if guard and "guard_high" in e else e["high"])
-    choices = [[spec.factors[j].index_of(v) for v in by_name[spec.factors[j].name]["levels"]]
-               for j in spec.categorical]
-    import itertools
-
-    out = []
-    for combo in itertools.product(*choices):
-        a, b = _at_levels(spec, lo, combo)[0], _at_levels(spec, hi, combo)[0]
-        out.append((a, b, tuple(combo)))
-    return out
-
-
 def _point(spec: StudySpec, u) -> dict:
     if u is None:
         return {}
@@ -224,10 +202,10 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                                                  key=f.levels.index)}
                if f.is_categorical else
                {"name": f.name, "unit": f.unit, "low": float(a), "high": float(b),
-                "guard_low": float(c), "guard_high": float(e), "tolerance": f.tolerance}
+                "guard_low": float(f"{c:.12g}"), "guard_high": float(f"{e:.12g}"), "tolerance": f.tolerance}
                for j, (f, a, b, c, e) in enumerate(zip(spec.factors, lo_n, hi_n, glo_n, ghi_n))]
     glo, ghi = spec.to_coded(glo_n)[0], spec.to_coded(ghi_n)[0]
-    inside = np.vstack([_at_levels(spec, glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512)
+    inside = np.vstack([at_levels(spec, glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512)
                                    * (ghi - glo), c) for c in held])
     fmap = feas.evaluate(inside, max(confidence, 0.5 + 1e-9))
     share = float(fmap.untrusted.mean())
@@ -239,8 +217,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                              predicted=[], cautions=cautions(spec, fit, share, mean_only),
                              message=extent.message, untrusted_share=share, supported=False,
                              advice=extent.advice, **common)
-    predicted = merge_ranges([predicted_ranges(spec, fit.surrogates, _at_levels(spec, glo, c)[0],
-                                                _at_levels(spec, ghi, c)[0], seed) for c in held])
+    predicted = merge_ranges([predicted_ranges(spec, fit.surrogates, at_levels(spec, glo, c)[0],
+                                                at_levels(spec, ghi, c)[0], seed) for c in held])
     return ProcessWindow(found=True, min_probability=float(res.min_probability), factors=factors,
                          constraints=constraint_margins(spec, glo_n, ghi_n),
                          predicted=predicted,
@@ -248,44 +226,6 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                                    + clipped_guard_notes(spec, lo_n, hi_n)), message=res.message,
                          worst_point=_point(spec, res.worst_point), untrusted_share=share,
                          volume_share=float(res.volume), **common)
-
-
-def allowed_combinations(spec: StudySpec, fixed: dict | None):
-    """Level combinations of the categorical factors left by ``fixed`` ``{factor: level name}``; None
-    when the study has no categorical factor."""
-    if not spec.categorical:
-        if fixed:
-            raise InputError(f"--level {next(iter(fixed))}: the study has no categorical factor")
-        return None
-    fixed = fixed or {}
-    cat = [spec.factors[j] for j in spec.categorical]
-    for name in fixed:
-        if name not in [f.name for f in cat]:
-            from windowfinder.errors import nearest
-
-            raise InputError(f"--level {name}=...: '{name}' is not a categorical factor; "
-                             + nearest(name, [f.name for f in cat], "categorical factors are"))
-    want = {spec.categorical.index(spec.factor_names.index(n)): spec.factor(n).index_of(v)
-            for n, v in fixed.items()}
-    return [c for c in spec.level_combinations() if all(c[k] == i for k, i in want.items())]
-
-
-def _at_levels(spec: StudySpec, U, combo):
-    """Coded settings ``U`` with the categorical columns set to a level combination."""
-    U = np.array(np.atleast_2d(U), dtype=float)
-    if spec.categorical:
-        U[:, spec.categorical] = spec.level_codes(combo)
-    return U
-
-
-def merge_ranges(per_level: list[list[dict]]) -> list[dict]:
-    """Predicted ranges over several level combinations: the widest of each bound."""
-    out = [dict(p) for p in per_level[0]]
-    for other in per_level[1:]:
-        for p, q in zip(out, other):
-            for k, pick in (("low", min), ("high", max), ("pi95_low", min), ("pi95_high", max)):
-                p[k] = pick(p[k], q[k])
-    return out
 
 
 def search_window(spec: StudySpec, feas: Feasibility, confidence: float, set_point=None,

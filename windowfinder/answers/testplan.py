@@ -111,7 +111,7 @@ def _points(spec: StudySpec, lo, hi, mid, runs, centre, seed):
 def _by_level(spec: StudySpec, window, runs, centre, seed):
     """:func:`_points` of the numeric factors once per level combination the window names (``runs``
     counts per combination)."""
-    from windowfinder.answers.results import window_boxes
+    from windowfinder.answers.levelwindow import window_boxes
 
     sub, num, cat = spec.numeric_part(), spec.numeric, spec.categorical
     Xs, kinds = [], []

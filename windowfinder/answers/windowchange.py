@@ -68,7 +68,7 @@ def previous_note(spec, feas, path, win, runs) -> str | None:
                 and bool(old.get("mean_only")) == win.mean_only and old.get("set_point") == win.set_point
                 and old.get("fixed_levels") == getattr(win, "fixed_levels", None)):
             return None
-        from windowfinder.answers.results import window_boxes
+        from windowfinder.answers.levelwindow import window_boxes
 
         lo, hi, _ = window_boxes(spec, old["factors"], guard=True)[0]
         old_volume = float(old["volume_share"])

@@ -65,7 +65,8 @@ def _latent_limits(model, r):
 
 def control_plan(spec, fit, window: dict) -> pd.DataFrame:
     """The control-plan table for ``window`` (window.json content, found) with the models of ``fit``."""
-    from windowfinder.answers.results import merge_ranges, predicted_ranges, window_boxes
+    from windowfinder.answers.levelwindow import merge_ranges, window_boxes
+    from windowfinder.answers.results import predicted_ranges
 
     factors = {f["name"]: f for f in window["factors"]}
     sp = window.get("set_point") or {}

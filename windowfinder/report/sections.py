@@ -269,7 +269,7 @@ def _level_slices(c: Content, centre):
     if not spec.categorical:
         yield (), centre, runs, c.suggestions, win
         return
-    from windowfinder.answers.results import window_boxes
+    from windowfinder.answers.levelwindow import window_boxes
 
     held = ({b[2] for b in window_boxes(spec, win.factors)} if win is not None and win.found else set())
     sug = c.suggestions
