@@ -416,3 +416,8 @@ def test_closed_loop_on_lasercut_ends_with_a_window_naming_its_levels(lasercut):
         X = np.column_stack([lo + U * (hi - lo), np.full(len(U), sim.LEVELS["gas"].index(level))])
         assert sim.feasible(X).mean() >= 0.95, level
     assert cdist(corners, corners).max() > 0
+    # the report maps power x speed once per gas, with the runs made at that gas
+    from windowfinder.report import write_report
+
+    html = write_report(st, window=win).read_text()
+    assert "power × speed at gas = nitrogen" in html and "power × speed at gas = oxygen" in html
