@@ -47,6 +47,10 @@ low = 30.0
 high = 180.0
 step = 5.0
 
+# [[factor]]          # a choice, not a number: two named levels, no low/high (runs.csv holds the names)
+# name = "solvent"
+# levels = ["toluene", "heptane"]
+
 [[response]]          # one table per measured result
 name = "yield"
 unit = "%"

@@ -77,7 +77,7 @@ def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, c
     found = [i for i, r in enumerate(results) if r.found]
     if not found:   # the combination that came closest speaks for all
         i = int(np.argmax([r.best_probability for r in results]))
-        return _embedded(spec, results[i], combos[i], [], combos)
+        return _embedded(spec, results[i], combos[i], [])
     single = _spread(spec, results, combos, found, confidence, t, seed, n_check, set_point, at)
     if len(combos) < 2:
         return single
@@ -88,7 +88,7 @@ def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, c
         return single
     x = joint.worst_point
     c = combos[int(np.argmin([f(x[None, :])[0] for f in fns]))]
-    out = _embedded(spec, joint, combos[0], combos, combos)
+    out = _embedded(spec, joint, combos[0], combos)
     out.worst_point = _full(spec, x, spec.level_codes(c))
     out.volume = float(volume(joint.lower, joint.upper)) * len(combos) / len(spec.level_combinations())
     out.message = _message(spec, combos, joint.min_probability, confidence)
@@ -120,14 +120,14 @@ def _spread(spec, results, combos, found, confidence, t, seed, n_check, set_poin
         j = int(np.argmin(P_in))
         if P_in[j] < worst_p:
             worst_p, worst_x = float(P_in[j]), _full(spec, X_in[j], spec.level_codes(c))
-    out = _embedded(spec, best, combos[k], held, combos)
+    out = _embedded(spec, best, combos[k], held)
     out.min_probability, out.worst_point = float(worst_p), worst_x
     out.volume = float(volume(best.lower, best.upper)) * len(held) / len(spec.level_combinations())
     out.message = _message(spec, held, worst_p, confidence)
     return out
 
 
-def _embedded(spec, r: WindowResult, combo, held, combos) -> WindowResult:
+def _embedded(spec, r: WindowResult, combo, held) -> WindowResult:
     """``r`` (numeric columns) in full coded units with the categorical columns at ``combo``."""
     codes = spec.level_codes(combo)
     return WindowResult(
