@@ -1,4 +1,5 @@
-"""Two four-factor process simulators of our own, for the calibration benchmark (made-up scenarios).
+"""Process simulators of our own for the calibration benchmark (made-up scenarios): two four-factor ones
+and a three-factor one held out from all model development.
 
 Neither was used to develop windowfinder's models: they exist to measure them on problems nobody tuned
 on. Every factor has a tolerance, each study has a safety limit, and the coating study has one
@@ -15,6 +16,14 @@ limit is known exactly (:meth:`benchmarks.problems.Problem.run_probability`).
   adhesive thins on heating; lap-shear strength needs cure (Arrhenius in temperature and time), a
   prepared surface and a bondline neither starved nor thick (safety: structural strength); voids shrink
   with pressure and grow with the cure temperature (outgassing). Constants are invented.
+* ``hardening`` (held out: written after the model changes it measures, never used to choose them):
+  scan induction hardening of a steel shaft. The surface peak temperature rises with the heat input
+  per unit length (power over the square root of scan speed: the moving-source scaling of Rosenthal's
+  solution, from memory); the hardened case depth grows with the excess of the peak over the
+  austenitising temperature (smoothly) and shrinks at high speed; surface hardness needs a severe
+  enough quench (logistic in the quench flow) and falls when an overheated surface coarsens its grain;
+  distortion grows with the hardened volume and the quench severity. Noise differs per response in
+  size and kind. Constants are invented.
 """
 
 from __future__ import annotations
@@ -104,6 +113,41 @@ def bonding_spec() -> StudySpec:
         source="benchmark bonding")
 
 
+# -- induction hardening (held out) ------------------------------------------------------------------
+
+HARDENING_NOISE = {
+    "case_depth": Noise("additive", 0.07, low=0.0),       # mm, etched section
+    "surface_hardness": Noise("additive", 1.1),           # HRC, Rockwell tester scatter
+    "distortion": Noise("relative", 0.12, low=0.0),       # um run-out, dial gauge on centres
+}
+
+
+def hardening_truth(X) -> dict:
+    """Noise-free responses at natural settings ``(power kW, scan speed mm/s, quench flow L/min)``."""
+    power, speed, flow = X[:, 0], X[:, 1], X[:, 2]
+    peak = 640.0 + 13.0 * power / np.sqrt(speed)                     # degC at the surface
+    excess = 55.0 * np.logaddexp(0.0, (peak - 830.0) / 55.0)         # smooth excess over Ac3
+    depth = 3.4 * (1.0 - np.exp(-excess / 380.0)) * (6.0 / speed) ** 0.12
+    quench = 1.0 / (1.0 + np.exp(-(flow - 20.0) / 5.0))
+    coarse = 7.0 / (1.0 + np.exp(-(peak - 1180.0) / 45.0))
+    hardness = 41.0 + 21.0 * quench - coarse
+    distortion = 9.0 + 16.0 * depth ** 1.6 * (flow / 30.0) ** 0.45
+    return {"case_depth": depth, "surface_hardness": hardness, "distortion": distortion,
+            "works": np.ones(len(X), bool)}
+
+
+def hardening_spec() -> StudySpec:
+    return StudySpec.from_dict({
+        "study": {"name": "induction hardening (benchmark, held out)", "confidence": 0.95, "seed": 0},
+        "factor": [{"name": "power", "low": 40.0, "high": 120.0, "tolerance": 1.0},
+                   {"name": "scan_speed", "low": 3.0, "high": 15.0, "tolerance": 0.2},
+                   {"name": "quench_flow", "low": 8.0, "high": 60.0, "tolerance": 1.5}],
+        "response": [{"name": "case_depth", "goal": "none", "min": 1.2, "max": 2.8, "kind": "safety"},
+                     {"name": "surface_hardness", "goal": "maximize", "min": 54.0},
+                     {"name": "distortion", "goal": "minimize", "max": 80.0, "transform": "log"}]},
+        source="benchmark hardening")
+
+
 def noisy_run(truth_fn, noise, factor_names):
     """``run(settings, seed)``: the truth at one setting plus one draw of each response's noise."""
     def run(settings, seed):
@@ -117,4 +161,6 @@ def noisy_run(truth_fn, noise, factor_names):
 PROCESSES = {"coating": ("cure of a catalysed coating, 4 factors (own simulator, noisy runs)",
                          coating_spec, coating_truth, COATING_NOISE),
              "bonding": ("structural adhesive bonding, 4 factors (own simulator, noisy runs)",
-                         bonding_spec, bonding_truth, BONDING_NOISE)}
+                         bonding_spec, bonding_truth, BONDING_NOISE),
+             "hardening": ("scan induction hardening, 3 factors (own simulator, noisy runs; held out)",
+                           hardening_spec, hardening_truth, HARDENING_NOISE)}

@@ -20,7 +20,8 @@ from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponen
 
 from windowfinder.errors import InputError
 from windowfinder.models.base import _check_xy, _ResponseModel
-from windowfinder.models.likelihood import SUPPORTED_NU, FastOptimizer, SignalKernel
+from windowfinder.models.likelihood import SUPPORTED_NU, FastOptimizer, MarginalLikelihood, SignalKernel
+from windowfinder.models.marginal import N_SAMPLES, Component, mixture_moments, sample_hyperparameters
 from windowfinder.models.sparse import FITC, kcenter
 from windowfinder.models.transform import _as_transform
 
@@ -61,6 +62,13 @@ JITTER = 1e-10  # added to the kernel diagonal for numerical stability only (sci
 # 2000 runs 0.256 vs 0.233 (tests/test_scale.py, docs/benchmarks.md).
 MAX_EXACT_RUNS = 1000
 SUBSET_RUNS = 500
+# Hyperparameter uncertainty (windowfinder.models.marginal): integrated over up to this many runs; above
+# it the posterior of the hyperparameters is narrow and the mode alone is used (common practice, no source).
+MARGINAL_MAX_RUNS = 200
+# ... and from twice as many runs as hyperparameters: with fewer, their posterior is essentially the
+# priors' and the mixture's spread speaks of the priors, not of the process (measured: three noise-free
+# runs in one factor gave a predictive sd of a third of the spread at a run). Common practice, no source.
+MARGINAL_MIN_RUNS_PER_HYPERPARAMETER = 2
 
 
 class GPModel(_ResponseModel):
@@ -95,6 +103,14 @@ class GPModel(_ResponseModel):
     n_subset : int
         Size of the space-filling subset (restarts; hyperparameters and inducing inputs above
         ``max_exact``).
+    hyperparameters : {"marginal", "map"}
+        ``"marginal"`` (default, from twice as many runs as hyperparameters up to
+        ``MARGINAL_MAX_RUNS`` runs): predictions integrate over the
+        hyperparameters' posterior, a mixture of GP posteriors at importance-weighted draws around the
+        mode, summarised by its mean and sd (:mod:`windowfinder.models.marginal`); ``"map"``: the mode
+        alone (plug-in). The attributes below describe the mode either way, except ``noise_std_``.
+    n_samples : int
+        Hyperparameter draws of the marginal predictive.
 
     Attributes
     ----------
@@ -104,7 +120,11 @@ class GPModel(_ResponseModel):
     y_mean_, y_scale_ : float
         Standardisation of the latent response (``y_scale_`` is 1 for a constant response).
     noise_std_, signal_std_ : float
-        Run-to-run noise sd and process (signal) sd, latent units.
+        Run-to-run noise sd and process (signal) sd, latent units; with marginal hyperparameters
+        ``noise_std_`` is the root of the posterior mean noise variance (the noise part of the
+        predictive variance of a new run).
+    components_ : list of Component
+        The mixture (weights, kernels, Cholesky factors); one component, the mode, for ``"map"``.
     length_scales_ : ndarray (d,)
         Length scales in coded units.
     X_train_, z_train_ : ndarray
@@ -121,7 +141,10 @@ class GPModel(_ResponseModel):
     kind = "gp"
 
     def __init__(self, transform="none", bounds=None, n_restarts=5, random_state=0, nu=2.5,
-                 trend="quadratic", max_exact=None, n_subset=None):
+                 trend="quadratic", max_exact=None, n_subset=None, hyperparameters="marginal",
+                 n_samples=N_SAMPLES):
+        self.hyperparameters = hyperparameters
+        self.n_samples = n_samples
         self.transform = transform
         self.bounds = bounds
         self.n_restarts = n_restarts
@@ -150,11 +173,17 @@ class GPModel(_ResponseModel):
             raise InputError(f"GP trend '{self.trend}' is unknown; use quadratic or none")
         return signal + WhiteKernel(1e-2, NOISE_BOUNDS)
 
+    def _objective(self, X, ys):
+        """Log posterior of the log hyperparameters and its gradient (likelihood plus the priors above)."""
+        return MarginalLikelihood(X, ys, self.nu, self.trend == "quadratic", JITTER, NOISE_PRIOR,
+                                  LENGTH_PRIOR if X.shape[0] <= LENGTH_PRIOR_MAX_RUNS else None)
+
     def _optimise(self, X, ys, kernel, n_restarts):
         """scikit-learn GP on ``(X, ys)``, hyperparameters at the posterior mode (priors above)."""
         fast = self.nu in SUPPORTED_NU
-        opt = FastOptimizer(X, ys, self.nu, self.trend == "quadratic", JITTER, NOISE_PRIOR,
-                             LENGTH_PRIOR if X.shape[0] <= LENGTH_PRIOR_MAX_RUNS else None) if fast else "fmin_l_bfgs_b"
+        opt = FastOptimizer(X, ys) if fast else "fmin_l_bfgs_b"
+        if fast:
+            opt.likelihood = self._objective(X, ys)
         gp = GaussianProcessRegressor(kernel=kernel, alpha=JITTER, normalize_y=False, optimizer=opt,
                                       n_restarts_optimizer=n_restarts, random_state=self.random_state)
         with warnings.catch_warnings():
@@ -203,8 +232,33 @@ class GPModel(_ResponseModel):
                               "checks are those of the approximation")
                 notes.append(self.note_)
         self.warning_ = "; ".join(notes)
+        self._thetas = self._hyper_draws(X, ys, gp)
         self._store(gp, X, z)
         return self
+
+    def _hyper_draws(self, X, ys, gp):
+        """Log hyperparameters and weights of the mixture components (the mode alone for ``"map"``)."""
+        theta = gp.kernel_.theta
+        if self.hyperparameters not in ("marginal", "map"):
+            raise InputError(f"GP hyperparameters '{self.hyperparameters}' is unknown; use marginal or map")
+        if (self.hyperparameters == "map" or self.n_samples < 1 or X.shape[0] > MARGINAL_MAX_RUNS
+                or X.shape[0] < MARGINAL_MIN_RUNS_PER_HYPERPARAMETER * theta.size
+                or self.nu not in SUPPORTED_NU or not np.ptp(ys) > 0):
+            self.hyper_ess_ = float("nan")
+            return theta[None, :], np.ones(1)
+        objective = self._objective(X, ys)
+        d = X.shape[1]
+        if objective.length_prior is not None:
+            # the sampled variable is log l: its prior density carries the Jacobian l of exp
+            # (the mode above is that of the length scales' own prior density)
+            def objective(t, _f=objective):
+                value, grad = _f(t)
+                grad = grad.copy()
+                grad[1:1 + d] += 1.0
+                return value + float(np.sum(t[1:1 + d])), grad
+        thetas, weights, self.hyper_ess_ = sample_hyperparameters(objective, theta, gp.kernel_.bounds,
+                                                                  self.n_samples, seed=self.random_state)
+        return thetas, weights
 
     def _fit_fixed(self, X, z):
         gp = self.gp_
@@ -229,6 +283,25 @@ class GPModel(_ResponseModel):
         else:
             self._signal = k.k1
         self.sparse_ = None
+        ys = (z - self.y_mean_) / self.y_scale_
+        self.components_ = [Component(self._signal, k.k2.noise_level, 1.0, k.theta)]
+        self.components_[0].L, self.components_[0].alpha = gp.L_, gp.alpha_
+        thetas, weights = getattr(self, "_thetas", (k.theta[None, :], np.ones(1)))
+        if self.inducing_ is None and len(thetas) > 1:
+            d = X.shape[1]
+            comps = []
+            for t, w in zip(thetas, weights):
+                e = np.exp(t)
+                c_t = e[1 + d] if self.trend == "quadratic" else 0.0
+                comp = Component(SignalKernel(e[0], e[1:1 + d], self.nu, c_t), e[-1], w, t).fit(X, ys, JITTER)
+                if comp is not None:
+                    comps.append(comp)
+            total = sum(c.weight for c in comps)
+            if comps and total > 0:
+                for c in comps:
+                    c.weight /= total
+                self.components_ = comps
+        self.noise_std_ = self.y_scale_ * float(np.sqrt(sum(c.weight * c.noise_var for c in self.components_)))
         if self.inducing_ is not None:
             self.sparse_ = FITC(self._signal, self.inducing_, X, (z - self.y_mean_) / self.y_scale_,
                                 float(k.k2.noise_level) + JITTER)
@@ -242,6 +315,8 @@ class GPModel(_ResponseModel):
         if self.sparse_ is not None:
             mean, var = self.sparse_.moments(X, return_std)
             mean = self.y_mean_ + self.y_scale_ * mean
+        elif len(self.components_) > 1:
+            return self._mixture_moments(X, return_std, noise)
         else:
             Ks = self._signal(X, self.X_train_)
             mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
@@ -255,21 +330,65 @@ class GPModel(_ResponseModel):
             var = var + self.noise_std_ ** 2 + self.block_var_
         return mean, np.sqrt(var)
 
+    def _mixture_moments(self, X, return_std, noise):
+        """Moment-matched mixture over the hyperparameter draws (:mod:`windowfinder.models.marginal`)."""
+        comps = self.components_
+        means = np.empty((len(comps), X.shape[0]))
+        vars_ = np.zeros_like(means)
+        for i, c in enumerate(comps):
+            Ks = c.signal(X, self.X_train_)
+            means[i] = Ks @ c.alpha
+            if return_std:
+                V = solve_triangular(c.L, Ks.T, lower=True, check_finite=False)
+                vars_[i] = np.maximum(c.signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
+                if noise:
+                    vars_[i] += c.noise_var
+        w = [c.weight for c in comps]
+        mean, var = mixture_moments(means, vars_, w)
+        mean = self.y_mean_ + self.y_scale_ * mean
+        if not return_std:
+            return mean, None
+        var = var * self.y_scale_ ** 2
+        if noise:
+            var = var + self.block_var_
+        return mean, np.sqrt(var)
+
     def cross_covariance(self, A, B, white_a=None):
         """Posterior covariance of the latent mean between ``A`` (m, d) and ``B`` (k, d), (m, k).
 
         ``k(A, B) - k(A, X) K^-1 k(X, B)`` with the fitted signal kernel (Rasmussen & Williams 2006,
         eq. 2.24), latent units, run-to-run noise excluded. None for the sparse approximation.
-        ``white_a``: :meth:`whitened` of ``A``, when already computed.
+        ``white_a``: :meth:`whitened` of ``A``, when already computed. With marginal hyperparameters,
+        the covariance of the mixture, ``sum_k w_k (C_k(A, B) + m_k(A) m_k(B)') - m(A) m(B)'``, whose
+        diagonal is the variance :meth:`predict` gives.
         """
         if self.sparse_ is not None:
             return None
-        Va = self.whitened(A) if white_a is None else white_a
-        return (self._signal(A, B) - Va.T @ self.whitened(B)) * self.y_scale_ ** 2
+        Wa = self.whitened(A) if white_a is None else white_a
+        Wb = self.whitened(B)
+        if len(self.components_) == 1:
+            return (self._signal(A, B) - Wa.T @ Wb) * self.y_scale_ ** 2
+        out = np.zeros((A.shape[0], B.shape[0]))
+        mean_a, mean_b = np.zeros(A.shape[0]), np.zeros(B.shape[0])
+        for c, (Va, ma), (Vb, mb) in zip(self.components_, Wa, Wb):
+            out += c.weight * (c.signal(A, B) - Va.T @ Vb + np.outer(ma, mb))
+            mean_a += c.weight * ma
+            mean_b += c.weight * mb
+        return (out - np.outer(mean_a, mean_b)) * self.y_scale_ ** 2
 
     def whitened(self, P):
-        """``L^-1 k(X, P)`` (n, m), the factor of the posterior covariance; reusable for fixed ``P``."""
-        return solve_triangular(self.gp_.L_, self._signal(self.X_train_, P), lower=True, check_finite=False)
+        """``L^-1 k(X, P)`` (n, m), the factor of the posterior covariance; reusable for fixed ``P``.
+
+        With marginal hyperparameters, one ``(L_k^-1 k_k(X, P), standardised mean at P)`` per component.
+        """
+        if len(self.components_) == 1:
+            return solve_triangular(self.gp_.L_, self._signal(self.X_train_, P), lower=True,
+                                    check_finite=False)
+        out = []
+        for c in self.components_:
+            Ks = c.signal(self.X_train_, P)
+            out.append((solve_triangular(c.L, Ks, lower=True, check_finite=False), Ks.T @ c.alpha))
+        return out
 
     def interval_quantile(self, level, loo=False):
         """Standard normal quantile (the GP predictive distribution is Gaussian)."""
@@ -283,6 +402,9 @@ class GPModel(_ResponseModel):
         ``sigma_i^2 = 1 / [K^-1]_ii``. The standardisation constants are held fixed too. Above
         ``max_exact`` runs ``K`` is the FITC covariance (:meth:`windowfinder.models.sparse.FITC.loo`).
 
+        With marginal hyperparameters: the same per mixture component, moment-matched with the
+        components' weights held fixed (the hyperparameters' posterior is not refitted without the run).
+
         Returns
         -------
         mean, sd : ndarray (n,)
@@ -292,8 +414,11 @@ class GPModel(_ResponseModel):
             mu, var = self.sparse_.loo()
             return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ * np.sqrt(var)
         n = self.X_train_.shape[0]
-        Kinv = cho_solve((self.gp_.L_, True), np.eye(n))
-        d = np.diag(Kinv)
         ys = (self.z_train_ - self.y_mean_) / self.y_scale_
-        mu = ys - self.gp_.alpha_ / d
-        return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ / np.sqrt(d)
+        means, vars_ = [], []
+        for c in self.components_:
+            d = np.diag(cho_solve((c.L, True), np.eye(n)))
+            means.append(ys - c.alpha / d)
+            vars_.append(1.0 / d)
+        mu, var = mixture_moments(np.array(means), np.array(vars_), [c.weight for c in self.components_])
+        return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ * np.sqrt(var)
