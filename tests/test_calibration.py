@@ -4,7 +4,8 @@ Source of the expectation: when the responses are draws from a Gaussian-process 
 Gaussian noise, the posterior predictive distribution of a new run is exact (Rasmussen & Williams 2006,
 *Gaussian Processes for Machine Learning*, §2.2, eqs. 2.22-2.24), so its central 80 % interval holds a
 new run with probability 0.8 and P(new run <= limit) is a calibrated probability. The models here fit
-their own hyperparameters, so the check is of the whole fit, not of the formula alone. Tolerances:
+their own hyperparameters and integrate over them (windowfinder.models.marginal), so the check is of
+the whole fit, not of the formula alone. Tolerances:
 3 standard errors of the mean over independent draws (the test points of one draw are correlated).
 """
 
@@ -33,14 +34,23 @@ def _draws(seed=11):
         yield X[:N_RUNS], y[:N_RUNS], X[N_RUNS:], y[N_RUNS:]
 
 
-@pytest.fixture(scope="module")
-def predictions():
+def _predictions(hyperparameters):
     out = []
     for X, y, Xt, yt in _draws():
-        m = GPModel(n_restarts=3, random_state=0).fit(X, y)
+        m = GPModel(n_restarts=3, random_state=0, hyperparameters=hyperparameters).fit(X, y)
         mu, sd = m.predict(Xt, return_std=True, noise=True)
         out.append((mu, sd, yt))
     return out
+
+
+@pytest.fixture(scope="module")
+def predictions():
+    return _predictions(None)   # the default: hyperparameters at their posterior mode
+
+
+@pytest.fixture(scope="module")
+def marginal_predictions():
+    return _predictions("marginal")
 
 
 def _mean_and_tolerance(values):
@@ -48,16 +58,27 @@ def _mean_and_tolerance(values):
     return v.mean(), 3.0 * v.std(ddof=1) / np.sqrt(len(v))
 
 
-@pytest.mark.xfail(strict=True, reason=(
-    "known miss, measured: 80 % intervals for a new run cover 0.73 +- 0.06 (3 s.e.) on these 30 draws; "
-    "fitted noise sd median 0.71x the true one; the plug-in (type-II MAP) hyperparameters are "
-    "overconfident at 30 runs. Hyperparameter marginalisation (R&W 2006 §5.2) is not done yet"))
-def test_new_run_80_percent_intervals_cover_80_percent(predictions):
+def _check_80_percent(predictions):
     q = norm.ppf(0.9)
     per_draw = [np.mean(np.abs(yt - mu) <= q * sd) for mu, sd, yt in predictions]
     mean, tol = _mean_and_tolerance(per_draw)
     assert tol < 0.08   # the check can tell 0.8 from a timid 0.9 or an overconfident 0.7
     assert abs(mean - 0.8) <= tol, (mean, tol)
+
+
+@pytest.mark.xfail(strict=True, reason=(
+    "known miss of the default, measured: 80 % intervals for a new run cover 0.73 +- 0.06 (3 s.e.) on "
+    "these 30 draws; fitted noise sd median 0.71x the true one; the plug-in (type-II MAP) "
+    "hyperparameters are overconfident at 30 runs. The mixture over the hyperparameters "
+    "(hyperparameters='marginal', next test) covers 0.80, but is not the default: on the calibration "
+    "benchmark it cost window volume without better calibration (docs/benchmarks.md)"))
+def test_new_run_80_percent_intervals_cover_80_percent(predictions):
+    _check_80_percent(predictions)
+
+
+# Measured: 0.80 +- 0.05 (3 s.e.), fitted noise sd (root of the posterior mean variance) 0.90x the true.
+def test_marginal_80_percent_intervals_cover_80_percent(marginal_predictions):
+    _check_80_percent(marginal_predictions)
 
 
 def test_limit_probability_is_calibrated(predictions):

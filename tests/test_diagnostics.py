@@ -193,3 +193,31 @@ def test_log_response_judged_on_its_own_scale():
     assert diag.loo_rmse_natural == pytest.approx(np.sqrt(np.mean((y - np.exp(mu)) ** 2)), rel=1e-9)
     assert (q2_log >= 0.5) == (not any("explains little" in w for w in diag.warnings))
     assert q2_log > q2_nat   # the natural scale understates this model (what the old check used)
+
+
+# Spread of the standardised LOO errors: with calibrated predictions they are standard normal, so the sum
+# of their squares is chi-square with n degrees of freedom (the band: scipy.stats.chi2, central 99 %); a
+# Student-t error (least squares) enters as the normal score with the same tail probability.
+def test_loo_spread_flags_too_sure_and_too_timid_models_by_the_chi_square_band(ccd):
+    U, d = ccd
+    y = d["yield"].to_numpy(float)
+    m = GPModel(n_restarts=2, random_state=0).fit(U, y)
+    mu, sd = m.loo()
+    r = (m.z_train_ - mu) / sd
+    spread = float(np.sqrt(np.mean(r ** 2)))
+    diag = diagnose(m, y, "yield", FACTORS, SPANS)
+    assert diag.loo_spread == pytest.approx(spread, rel=1e-10)
+    n = len(y)
+    lo, hi = np.sqrt(stats.chi2.ppf([0.005, 0.995], n) / n)
+    for target, flagged in ((1.05 * hi, "too sure"), (0.95 * lo, "too timid"), (0.97 * hi, None),
+                            (1.03 * lo, None)):
+        scaled = copy.copy(m)
+        factor = spread / target
+        scaled.loo = lambda f=factor: (mu, sd * f)
+        notes = " ".join(diagnose(scaled, y, "yield", FACTORS, SPANS).warnings)
+        assert ("too sure" in notes) == (flagged == "too sure"), (target, notes)
+        assert ("too timid" in notes) == (flagged == "too timid"), (target, notes)
+    q = QuadraticModel().fit(U, y)
+    qm, qs = q.loo()
+    scores = stats.norm.isf(stats.t.sf((q.z_train_ - qm) / qs, q.loo_dof))
+    assert diagnose(q, y, "yield", FACTORS, SPANS).loo_spread == pytest.approx(np.sqrt(np.mean(scores ** 2)))

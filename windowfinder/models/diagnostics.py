@@ -22,6 +22,12 @@ Q2_MIN = 0.5
 COVERAGE_MIN = 0.80  # of the 95% intervals; coverage cannot exceed 1, so only "too narrow" is testable
 COVERAGE_MIN_RUNS = 10
 BOUND_SLACK = 1.01  # a hyperparameter within 1% of its bound counts as "at the bound"
+# Spread of the leave-one-out errors against the model's own predictive sd: with calibrated predictions
+# the standardised errors are standard normal, so their sum of squares is chi-square with n degrees of
+# freedom; outside its central 99 % the model's probabilities are flagged as too sure or too timid
+# (LOO errors are slightly correlated, so the band is approximate; level: common practice, no source).
+SPREAD_LEVEL = 0.01
+SPREAD_MIN_RUNS = 10
 
 
 def _json_number(v):
@@ -52,6 +58,11 @@ class ModelDiagnostics:
     coverage95 : float
         Share of runs whose measured value lies inside its 95% LOO interval (noise included); the same
         on either scale, the transform being monotone.
+    loo_spread : float
+        Root mean square of the standardised LOO errors (each error over its own predictive sd, a
+        Student-t error first mapped to the normal score with the same tail probability): about 1
+        when the model's stated uncertainty is right, above 1 when it is too sure, below 1 when too
+        timid. NaN with fewer than two predictable runs.
     scale : str
         The model's scale: ``"natural"`` (no transform), ``"log"`` or ``"logit"``.
     length_scales : dict[str, float]
@@ -78,6 +89,7 @@ class ModelDiagnostics:
     loo_rmse: float
     coverage95: float
     loo_rmse_natural: float = float("nan")
+    loo_spread: float = float("nan")
     scale: str = "natural"
     length_scales: dict = field(default_factory=dict)
     noise_sd: float = float("nan")
@@ -111,7 +123,7 @@ class ModelDiagnostics:
     def to_frame(self):
         """One-row summary table (length scales as ``length_scale:<factor>`` columns)."""
         row = {k: getattr(self, k) for k in ("response", "model", "n", "scale", "loo_q2", "loo_rmse",
-                                              "loo_rmse_natural", "coverage95", "noise_sd")}
+                                              "loo_rmse_natural", "loo_spread", "coverage95", "noise_sd")}
         row.update({f"length_scale:{k}": v for k, v in self.length_scales.items()})
         row["warnings"] = "; ".join(self.warnings)
         return pd.DataFrame([row])
@@ -186,6 +198,26 @@ def _press_q2(v, v_loo):
     return q2, unit * math.sqrt(press / max(v.size, 1))
 
 
+def loo_spread(model, mu, sd, ok):
+    """Standardised LOO errors as normal scores, their root mean square and the chi-square band.
+
+    Returns ``(spread, low, high)``: ``sqrt(mean u^2)`` and the bounds of ``sqrt(chi2_n / n)`` at
+    ``SPREAD_LEVEL / 2`` and ``1 - SPREAD_LEVEL / 2`` (scipy.stats.chi2), ``n`` the predictable runs.
+    """
+    from scipy import stats
+
+    z = np.asarray(model.z_train_, float)[ok]
+    r = (z - np.asarray(mu, float)[ok]) / np.asarray(sd, float)[ok]
+    dof = getattr(model, "loo_dof", None)
+    if dof is not None:   # Student t error -> the normal score with the same tail probability
+        r = stats.norm.isf(stats.t.sf(r, dof))
+    n = r.size
+    if n < 2:
+        return float("nan"), float("nan"), float("nan")
+    lo, hi = stats.chi2.ppf([SPREAD_LEVEL / 2, 1 - SPREAD_LEVEL / 2], n) / n
+    return float(np.sqrt(np.mean(r ** 2))), float(np.sqrt(lo)), float(np.sqrt(hi))
+
+
 def diagnose(model, y=None, response_name="response", factor_names=(), factor_spans=(), choice=None,
              term_names=None):
     """Leave-one-out diagnostics of a fitted :class:`~windowfinder.models.gp.GPModel` or ``QuadraticModel``.
@@ -219,7 +251,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     least squares). Q^2 and RMSE are computed on the model's scale (log or logit of the response when
     it is transformed), the natural-unit RMSE beside them. Warnings: Q^2 below 0.5; with at least 10 runs, 95% coverage below 0.80 (coverage
     cannot exceed 1, so intervals that are too wide do not show in this count); GP length scales or noise
-    level at a bound.
+    level at a bound; with at least 10 runs, standardised LOO errors whose root mean square lies outside
+    the central 99 % of ``sqrt(chi2_n / n)`` (model too sure or too timid).
     """
     tr = model.transform_
     y = tr.inverse(model.z_train_) if y is None else np.asarray(y, dtype=float).ravel()
@@ -249,6 +282,16 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     if n >= COVERAGE_MIN_RUNS and coverage < COVERAGE_MIN:
         notes.append(f"intervals are too narrow: only {int(inside.sum())} of {inside.size} runs fall inside "
                      "their 95% leave-one-out interval")
+    spread, spread_lo, spread_hi = loo_spread(model, mu, sd, ok & (np.asarray(sd) > 0))
+    if int(ok.sum()) >= SPREAD_MIN_RUNS and spread > spread_hi:
+        notes.append(f"the model is too sure of itself: runs left out miss its prediction by {spread:.2f} "
+                     f"times its own predictive sd (about 1 expected; above {spread_hi:.2f} happens by "
+                     "chance less than once in 200); its probabilities and windows are optimistic; look for "
+                     "a missing effect or a wrong transform, or replicate runs to measure the scatter")
+    elif int(ok.sum()) >= SPREAD_MIN_RUNS and spread < spread_lo:
+        notes.append(f"the model is too timid: runs left out miss its prediction by only {spread:.2f} times "
+                     f"its own predictive sd (about 1 expected; below {spread_lo:.2f} happens by chance less "
+                     "than once in 200); its probabilities and windows are pessimistic")
     scales, ls_notes = _length_scale_checks(model, response_name, list(factor_names), list(factor_spans))
     notes += ls_notes
     terms = []
@@ -263,7 +306,7 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     block_sd = float(model.block_sd_ * slope) if offsets else float("nan")
     return ModelDiagnostics(
         response=response_name, model=model.kind, n=n, loo_q2=q2, loo_rmse=rmse, coverage95=coverage,
-        loo_rmse_natural=rmse_natural, scale="natural" if tr.kind == "none" else tr.kind,
+        loo_rmse_natural=rmse_natural, loo_spread=spread, scale="natural" if tr.kind == "none" else tr.kind,
         length_scales=scales, noise_sd=noise_sd, block_offsets=offsets, block_sd=block_sd,
         warnings=notes, measured=y.tolist(),
         loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist(),
