@@ -13,7 +13,7 @@ import warnings
 
 import numpy as np
 from scipy import stats
-from scipy.linalg import cho_solve, solve_triangular
+from scipy.linalg import solve_triangular
 from sklearn.exceptions import ConvergenceWarning
 from sklearn.gaussian_process import GaussianProcessRegressor
 from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponentiation, Matern, WhiteKernel
@@ -21,7 +21,9 @@ from sklearn.gaussian_process.kernels import ConstantKernel, DotProduct, Exponen
 from windowfinder.errors import InputError
 from windowfinder.models.base import _check_xy, _ResponseModel
 from windowfinder.models.likelihood import SUPPORTED_NU, FastOptimizer, MarginalLikelihood, SignalKernel
-from windowfinder.models.marginal import N_SAMPLES, Component, mixture_moments, sample_hyperparameters
+from windowfinder.models.marginal import (N_SAMPLES, Component, fit_components, mixture_cross_covariance,
+                                          mixture_loo, mixture_predict, mixture_whitened,
+                                          sample_hyperparameters)
 from windowfinder.models.sparse import FITC, kcenter
 from windowfinder.models.transform import _as_transform
 
@@ -188,9 +190,7 @@ class GPModel(_ResponseModel):
     def _optimise(self, X, ys, kernel, n_restarts):
         """scikit-learn GP on ``(X, ys)``, hyperparameters at the posterior mode (priors above)."""
         fast = self.nu in SUPPORTED_NU
-        opt = FastOptimizer(X, ys) if fast else "fmin_l_bfgs_b"
-        if fast:
-            opt.likelihood = self._objective(X, ys)
+        opt = FastOptimizer(likelihood=self._objective(X, ys)) if fast else "fmin_l_bfgs_b"
         gp = GaussianProcessRegressor(kernel=kernel, alpha=JITTER, normalize_y=False, optimizer=opt,
                                       n_restarts_optimizer=n_restarts, random_state=self.random_state)
         with warnings.catch_warnings():
@@ -296,19 +296,8 @@ class GPModel(_ResponseModel):
         self.components_[0].L, self.components_[0].alpha = gp.L_, gp.alpha_
         thetas, weights = getattr(self, "_thetas", (k.theta[None, :], np.ones(1)))
         if self.inducing_ is None and len(thetas) > 1:
-            d = X.shape[1]
-            comps = []
-            for t, w in zip(thetas, weights):
-                e = np.exp(t)
-                c_t = e[1 + d] if self.trend == "quadratic" else 0.0
-                comp = Component(SignalKernel(e[0], e[1:1 + d], self.nu, c_t), e[-1], w, t).fit(X, ys, JITTER)
-                if comp is not None:
-                    comps.append(comp)
-            total = sum(c.weight for c in comps)
-            if comps and total > 0:
-                for c in comps:
-                    c.weight /= total
-                self.components_ = comps
+            self.components_ = (fit_components(thetas, weights, X, ys, self.nu, self.trend == "quadratic",
+                                               JITTER) or self.components_)
         self.noise_std_ = self.y_scale_ * float(np.sqrt(sum(c.weight * c.noise_var for c in self.components_)))
         if self.inducing_ is not None:
             self.sparse_ = FITC(self._signal, self.inducing_, X, (z - self.y_mean_) / self.y_scale_,
@@ -340,26 +329,11 @@ class GPModel(_ResponseModel):
 
     def _mixture_moments(self, X, return_std, noise):
         """Moment-matched mixture over the hyperparameter draws (:mod:`windowfinder.models.marginal`)."""
-        comps = self.components_
-        means = np.empty((len(comps), X.shape[0]))
-        vars_ = np.zeros_like(means)
-        for i, c in enumerate(comps):
-            Ks = c.signal(X, self.X_train_)
-            means[i] = Ks @ c.alpha
-            if return_std:
-                V = solve_triangular(c.L, Ks.T, lower=True, check_finite=False)
-                vars_[i] = np.maximum(c.signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
-                if noise:
-                    vars_[i] += c.noise_var
-        w = [c.weight for c in comps]
-        mean, var = mixture_moments(means, vars_, w)
+        mean, var = mixture_predict(self.components_, self.X_train_, X, return_std, noise)
         mean = self.y_mean_ + self.y_scale_ * mean
         if not return_std:
             return mean, None
-        var = var * self.y_scale_ ** 2
-        if noise:
-            var = var + self.block_var_
-        return mean, np.sqrt(var)
+        return mean, np.sqrt(var * self.y_scale_ ** 2 + (self.block_var_ if noise else 0.0))
 
     def cross_covariance(self, A, B, white_a=None):
         """Posterior covariance of the latent mean between ``A`` (m, d) and ``B`` (k, d), (m, k).
@@ -376,13 +350,7 @@ class GPModel(_ResponseModel):
         Wb = self.whitened(B)
         if len(self.components_) == 1:
             return (self._signal(A, B) - Wa.T @ Wb) * self.y_scale_ ** 2
-        out = np.zeros((A.shape[0], B.shape[0]))
-        mean_a, mean_b = np.zeros(A.shape[0]), np.zeros(B.shape[0])
-        for c, (Va, ma), (Vb, mb) in zip(self.components_, Wa, Wb):
-            out += c.weight * (c.signal(A, B) - Va.T @ Vb + np.outer(ma, mb))
-            mean_a += c.weight * ma
-            mean_b += c.weight * mb
-        return (out - np.outer(mean_a, mean_b)) * self.y_scale_ ** 2
+        return mixture_cross_covariance(self.components_, A, B, Wa, Wb) * self.y_scale_ ** 2
 
     def whitened(self, P):
         """``L^-1 k(X, P)`` (n, m), the factor of the posterior covariance; reusable for fixed ``P``.
@@ -392,11 +360,7 @@ class GPModel(_ResponseModel):
         if len(self.components_) == 1:
             return solve_triangular(self.gp_.L_, self._signal(self.X_train_, P), lower=True,
                                     check_finite=False)
-        out = []
-        for c in self.components_:
-            Ks = c.signal(self.X_train_, P)
-            out.append((solve_triangular(c.L, Ks, lower=True, check_finite=False), Ks.T @ c.alpha))
-        return out
+        return mixture_whitened(self.components_, self.X_train_, P)
 
     def interval_quantile(self, level, loo=False):
         """Standard normal quantile (the GP predictive distribution is Gaussian)."""
@@ -421,12 +385,5 @@ class GPModel(_ResponseModel):
         if self.sparse_ is not None:
             mu, var = self.sparse_.loo()
             return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ * np.sqrt(var)
-        n = self.X_train_.shape[0]
-        ys = (self.z_train_ - self.y_mean_) / self.y_scale_
-        means, vars_ = [], []
-        for c in self.components_:
-            d = np.diag(cho_solve((c.L, True), np.eye(n)))
-            means.append(ys - c.alpha / d)
-            vars_.append(1.0 / d)
-        mu, var = mixture_moments(np.array(means), np.array(vars_), [c.weight for c in self.components_])
+        mu, var = mixture_loo(self.components_, (self.z_train_ - self.y_mean_) / self.y_scale_)
         return self.y_mean_ + self.y_scale_ * mu, self.y_scale_ * np.sqrt(var)

@@ -174,8 +174,10 @@ class FastOptimizer:
     once the fit is done, so a fitted model does not keep a second copy.
     """
 
-    def __init__(self, X, y, nu=2.5, trend=True, jitter=1e-10, noise_prior=None, length_prior=None):
-        self.likelihood = MarginalLikelihood(X, y, nu, trend, jitter, noise_prior, length_prior)
+    def __init__(self, X=None, y=None, nu=2.5, trend=True, jitter=1e-10, noise_prior=None, length_prior=None,
+                 likelihood=None):
+        self.likelihood = (MarginalLikelihood(X, y, nu, trend, jitter, noise_prior, length_prior)
+                           if likelihood is None else likelihood)
         self.n_evaluations = 0
 
     def _negative(self, theta):

@@ -31,8 +31,10 @@ The draws are seeded (scrambled Sobol points mapped to normal quantiles), so a f
 from __future__ import annotations
 
 import numpy as np
-from scipy.linalg import lapack
+from scipy.linalg import cho_solve, lapack, solve_triangular
 from scipy.stats import norm, qmc
+
+from windowfinder.models.likelihood import SignalKernel
 
 # Numbers: common practice, no source.
 N_SAMPLES = 16        # importance draws (plus the mode)
@@ -155,3 +157,74 @@ def mixture_moments(means, variances, weights):
     mean = np.sum(w * means, axis=0)
     second = np.sum(w * (variances + means ** 2), axis=0)
     return mean, np.maximum(second - mean ** 2, 0.0)
+
+
+def fit_components(thetas, weights, X, ys, nu, trend, jitter):
+    """One fitted :class:`Component` per draw (log hyperparameters ``[c, l_1..l_d, (c_t), s2]``); a draw
+    whose covariance is not positive definite is dropped and the weights renormalised. Empty list when
+    none is left."""
+    d = X.shape[1]
+    comps = []
+    for t, w in zip(thetas, weights):
+        e = np.exp(t)
+        c_t = e[1 + d] if trend else 0.0
+        comp = Component(SignalKernel(e[0], e[1:1 + d], nu, c_t), e[-1], w, t).fit(X, ys, jitter)
+        if comp is not None:
+            comps.append(comp)
+    total = sum(c.weight for c in comps)
+    if not comps or not total > 0:
+        return []
+    for c in comps:
+        c.weight /= total
+    return comps
+
+
+def mixture_predict(comps, X_train, X, return_std, noise):
+    """Standardised mean and variance of the mixture at ``X`` (R&W 2006, eqs. 2.25-2.26 per component);
+    ``noise`` adds each component's own noise variance before mixing. Variance None without
+    ``return_std``."""
+    means = np.empty((len(comps), X.shape[0]))
+    vars_ = np.zeros_like(means)
+    for i, c in enumerate(comps):
+        Ks = c.signal(X, X_train)
+        means[i] = Ks @ c.alpha
+        if return_std:
+            V = solve_triangular(c.L, Ks.T, lower=True, check_finite=False)
+            vars_[i] = np.maximum(c.signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
+            if noise:
+                vars_[i] += c.noise_var
+    mean, var = mixture_moments(means, vars_, [c.weight for c in comps])
+    return mean, (var if return_std else None)
+
+
+def mixture_whitened(comps, X_train, P):
+    """Per component ``(L_k^-1 k_k(X, P), standardised mean at P)``, reusable for fixed ``P``."""
+    out = []
+    for c in comps:
+        Ks = c.signal(X_train, P)
+        out.append((solve_triangular(c.L, Ks, lower=True, check_finite=False), Ks.T @ c.alpha))
+    return out
+
+
+def mixture_cross_covariance(comps, A, B, Wa, Wb):
+    """Standardised covariance of the mixture between ``A`` and ``B``:
+    ``sum_k w_k (C_k(A, B) + m_k(A) m_k(B)') - m(A) m(B)'`` (``Wa``, ``Wb`` from :func:`mixture_whitened`)."""
+    out = np.zeros((A.shape[0], B.shape[0]))
+    mean_a, mean_b = np.zeros(A.shape[0]), np.zeros(B.shape[0])
+    for c, (Va, ma), (Vb, mb) in zip(comps, Wa, Wb):
+        out += c.weight * (c.signal(A, B) - Va.T @ Vb + np.outer(ma, mb))
+        mean_a += c.weight * ma
+        mean_b += c.weight * mb
+    return out - np.outer(mean_a, mean_b)
+
+
+def mixture_loo(comps, ys):
+    """Closed-form leave-one-out mean and variance (standardised) of the mixture, weights held fixed:
+    per component ``mu_i = y_i - [K^-1 y]_i / [K^-1]_ii``, ``s_i^2 = 1 / [K^-1]_ii`` (R&W 2006, §5.4.2)."""
+    n = ys.shape[0]
+    means, vars_ = [], []
+    for c in comps:
+        d = np.diag(cho_solve((c.L, True), np.eye(n)))
+        means.append(ys - c.alpha / d)
+        vars_.append(1.0 / d)
+    return mixture_moments(np.array(means), np.array(vars_), [c.weight for c in comps])
