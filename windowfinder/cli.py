@@ -168,12 +168,19 @@ def _set_point(items, spec):
 
 
 def _levels(items, spec):
-    """``--level gas=mix``: ``{factor: level}`` of categorical factors, checked before any fit."""
+    """``--level FACTOR=LEVEL``: ``{factor: level}`` of categorical factors, checked before any fit."""
     from windowfinder.answers.levelwindow import allowed_combinations
 
     if not items:
         return None
-    out = {name: value.strip() for _, name, value in _pairs(items, "--level", "gas=mix")}
+    cat = [spec.factors[j] for j in spec.categorical]
+    example = f"{cat[0].name}={cat[0].levels[-1]}" if cat else "FACTOR=LEVEL"   # this study's names
+    out = {}
+    for _, name, value in _pairs(items, "--level", example):
+        if name in out and out[name] != value.strip():
+            raise InputError(f"--level {name}={out[name]} and --level {name}={value.strip()} disagree; "
+                             f"give one level of '{name}'")
+        out[name] = value.strip()
     try:   # names and levels checked here, one line each
         allowed_combinations(spec, out)
     except InputError as err:
@@ -188,7 +195,7 @@ def _print_cautions(cautions, safety: bool):
 
 
 def cmd_window(args):
-    from windowfinder.answers.results import build_window, feasibility_of
+    from windowfinder.answers.results import build_window, feasibility_of, fixed_levels
     from windowfinder.answers.windowchange import previous_note
     from windowfinder.export.files import window_document, window_table, write_window
     from windowfinder.export.provenance import provenance
@@ -197,6 +204,7 @@ def cmd_window(args):
     study = _load(args)
     sp = _set_point(args.set_point, study.spec)
     levels = _levels(args.level, study.spec)
+    fixed_levels(study.spec, sp, levels)   # a level given twice must agree: refused before the fit
     fit = study.fit()
     _warn(fit.warnings)
     print("searching for the largest window ...", file=sys.stderr)

@@ -145,6 +145,26 @@ def predicted_ranges(spec: StudySpec, surrogates, lo, hi, seed: int = 0, n: int 
     return out
 
 
+def fixed_levels(spec: StudySpec, set_point: dict | None, levels: dict | None) -> dict:
+    """``{categorical factor: level}`` fixed by ``levels`` (``--level``) and by a set point's levels.
+
+    A level given both ways must agree: ``--set-point resin=alpha --level resin=beta`` is refused
+    (one line) rather than one of them silently winning.
+    """
+    fixed = dict(levels or {})
+    for j in spec.categorical if set_point is not None else []:
+        f = spec.factors[j]
+        if f.name not in set_point:
+            continue
+        value = set_point[f.name]
+        level = f.levels[f.index_of(value)] if isinstance(value, str) else f.label(value)
+        if f.name in fixed and fixed[f.name] != level:
+            raise InputError(f"--set-point {f.name}={level} and --level {f.name}={fixed[f.name]} disagree; "
+                             f"give the level of '{f.name}' once (in the set point or with --level)")
+        fixed[f.name] = level
+    return fixed
+
+
 def build_window(spec: StudySpec, fit, confidence: float | None = None, set_point: dict | None = None,
                  mean_only: bool = False, seed: int | None = None, levels: dict | None = None) -> ProcessWindow:
     """Find the largest window and express it in natural units (see :func:`search_window`).
@@ -170,9 +190,7 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
         missing = [f for f in spec.factor_names if f not in set_point]
         if missing:
             raise InputError(f"--set-point: give every factor (missing: {', '.join(missing)})")
-        for j in spec.categorical:   # a set point's level fixes that factor's level
-            f = spec.factors[j]
-            fixed[f.name] = set_point[f.name] if isinstance(set_point[f.name], str) else f.label(set_point[f.name])
+        fixed = fixed_levels(spec, set_point, levels)
         sp = spec.to_coded([spec.factors[j].index_of(fixed[f]) if spec.factors[j].is_categorical
                             else set_point[f] for j, f in enumerate(spec.factor_names)])[0]
         if ((sp < 0) | (sp > 1)).any():

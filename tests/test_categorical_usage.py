@@ -1,0 +1,103 @@
+"""Using a study with a categorical factor as a new user does: options, messages, tables, the API.
+
+The toy study (ours, for these checks only) has two numeric factors and a two-level categorical one;
+its single response is linear with a closed-form truth, ``y = a + b + 4 [resin = beta]``, max 12.
+"""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+
+from windowfinder.cli import main
+from windowfinder.study import Study
+
+STUDY = """\
+[study]
+name = "resin toy"
+seed = 5
+confidence = 0.9
+
+[[factor]]
+name = "resin"
+levels = ["alpha", "beta"]
+
+[[factor]]
+name = "a"
+unit = "degC"
+low = 0.0
+high = 10.0
+step = 0.5
+tolerance = 0.5
+
+[[factor]]
+name = "b"
+unit = "bar"
+low = 0.0
+high = 10.0
+step = 0.5
+
+[[response]]
+name = "y"
+unit = "mm"
+goal = "minimize"
+max = 12.0
+model = "linear"
+"""
+
+EFFECT = 4.0
+
+
+def truth(a, b, resin):
+    return np.asarray(a, float) + np.asarray(b, float) + EFFECT * (np.asarray(resin) == "beta")
+
+
+def make_study(folder, text=STUDY, runs=24, noise=0.05):
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "study.toml").write_text(text)
+    st = Study.load(folder)
+    frame = st.design("space-filling", runs=runs)
+    rng = np.random.default_rng(2)
+    frame["y"] = truth(frame["a"], frame["b"], frame["resin"]) + noise * rng.standard_normal(len(frame))
+    frame["status"] = "done"
+    st.add_runs(frame)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def toy(tmp_path_factory):
+    return make_study(tmp_path_factory.mktemp("toy") / "s")
+
+
+def _cli(argv, capsys):
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+# ------------------------------------------------------------------- window: a level given twice
+def test_set_point_level_and_level_option_that_disagree_are_refused(toy, capsys):
+    out = toy / "out" / "window.json"
+    before = out.read_bytes() if out.exists() else None
+    code, _, err = _cli(["window", toy, "--set-point", "a=3", "b=3", "resin=alpha", "--level", "resin=beta"],
+                        capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "resin=alpha" in err and "resin=beta" in err and "Traceback" not in err
+    assert (out.read_bytes() if out.exists() else None) == before            # nothing written
+    code, _, err = _cli(["window", toy, "--level", "resin=alpha", "resin=beta"], capsys)
+    assert code == 2 and "disagree" in err and len(err.strip().splitlines()) == 1
+    # the same level both ways is fine: the window holds at beta, where a + b <= 12 - 4 (closed form)
+    code, _, _ = _cli(["window", toy, "--set-point", "a=2", "b=2", "resin=beta", "--level", "resin=beta"],
+                      capsys)
+    win = json.loads(out.read_text())
+    assert code == 0 and win["found"]
+    f = {x["name"]: x for x in win["factors"]}
+    assert f["resin"]["levels"] == ["beta"]
+    assert f["a"]["guard_high"] + f["b"]["guard_high"] <= 12.0 - EFFECT + 1e-9
+
+
+def test_level_usage_hint_uses_this_studys_names(toy, capsys):
+    code, _, err = _cli(["window", toy, "--level", "resin"], capsys)
+    assert code == 2 and "e.g. resin=beta" in err and "gas" not in err
