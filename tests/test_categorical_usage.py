@@ -101,3 +101,35 @@ def test_set_point_level_and_level_option_that_disagree_are_refused(toy, capsys)
 def test_level_usage_hint_uses_this_studys_names(toy, capsys):
     code, _, err = _cli(["window", toy, "--level", "resin"], capsys)
     assert code == 2 and "e.g. resin=beta" in err and "gas" not in err
+
+
+# ---------------------------------------------------------------- report: log axes, window table
+def _one_two_five(lo, hi):
+    """1, 2 and 5 times the powers of ten inside [lo, hi] (the usual log-axis tick series)."""
+    vals = [m * 10.0 ** k for k in range(-3, 6) for m in (1, 2, 5)]
+    return sorted(v for v in vals if lo <= v <= hi)
+
+
+def test_log_axis_tick_labels_are_plain_numbers():
+    import matplotlib
+
+    from windowfinder.inputs.spec import Response
+    from windowfinder.models.gp import GPModel
+    from windowfinder.report import loo_figure
+
+    X = np.linspace(0.0, 1.0, 14)[:, None]
+    y = 3.0 * np.exp(3.0 * X[:, 0]) * np.exp(0.05 * np.random.default_rng(1).standard_normal(14))
+    model = GPModel(transform="log", n_restarts=1, random_state=0).fit(X, y)
+    voc = Response(name="voc", unit="ppm", goal="none", max=25.0, transform="log")
+    with matplotlib.rc_context({"text.parse_math": False}):   # as the report draws
+        fig = loo_figure(model, y, response=voc)
+        fig.canvas.draw()
+        ax = fig.axes[0]
+        assert ax.get_xscale() == "log" and ax.get_yscale() == "log"
+        for k, axis, (lo, hi) in ((0, ax.xaxis, ax.get_xlim()), (1, ax.yaxis, ax.get_ylim())):
+            lo, hi = min(lo, hi), max(lo, hi)
+            shown = [t.get_text() for t in axis.get_ticklabels(which="both")
+                     if t.get_text() and lo <= t.get_position()[k] <= hi]   # the labels drawn
+            assert shown and not any("$" in s for s in shown)
+            # plain numbers at the 1-2-5 ticks inside the axis range, no minor-tick labels
+            assert sorted(float(s) for s in shown) == pytest.approx(_one_two_five(lo, hi))

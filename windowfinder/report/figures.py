@@ -44,6 +44,26 @@ def log_scale(response, low, high) -> bool:
     return getattr(response, "transform", "none") == "log" and 0 < low and high > 10 * low
 
 
+def log_axis(ax, which: str, low: float, high: float) -> None:
+    """Put the ``which`` ("x" or "y") axis of ``ax`` on a log scale with plain-number tick labels.
+
+    Ticks at 1, 2 and 5 times the powers of ten (only the powers when ``low .. high`` spans more than
+    two decades), labelled like ``60`` or ``0.2``; minor ticks unlabelled.
+    Matplotlib's own log labels are TeX-like math (``$\\mathdefault{6\\times10^{1}}$``), which the report
+    draws as plain text (``text.parse_math`` off, so that a ``$`` in a name stays a ``$``); they then
+    showed raw and, labelling the minor ticks too, overlapped.
+    """
+    from matplotlib import ticker
+
+    (ax.set_xscale if which == "x" else ax.set_yscale)("log")
+    axis = ax.xaxis if which == "x" else ax.yaxis
+    subs = (1.0, 2.0, 5.0) if high <= 100.0 * low else (1.0,)
+    axis.set_major_locator(ticker.LogLocator(base=10.0, subs=subs))
+    axis.set_major_formatter(ticker.FuncFormatter(lambda v, _pos: f"{v:g}"))
+    axis.set_minor_locator(ticker.LogLocator(base=10.0, subs=np.arange(2, 10) * 1.0))
+    axis.set_minor_formatter(ticker.NullFormatter())
+
+
 def figure_png(fig: Figure, dpi: int = 90) -> str:
     """Base64 text of the figure as PNG (for a ``data:`` URI); the figure is cleared afterwards."""
     buf = io.BytesIO()
@@ -101,8 +121,8 @@ def loo_figure(model, y=None, response=None, unit: str = "") -> Figure:
     ends = [a / 1.2, b * 1.2] if log else [a - pad, b + pad]
     ax.plot(ends, ends, color="0.4", lw=1, ls="--", label="prediction = measured")
     if log:
-        ax.set_xscale("log")
-        ax.set_yscale("log")
+        log_axis(ax, "x", *ends)
+        log_axis(ax, "y", *ends)
     ax.set_xlim(*ends)
     ax.set_ylim(*ends)
     ax.set_xlabel(label(f"measured {name}", unit))
@@ -170,9 +190,10 @@ def _two_goals(fig, ax, frame, goals, pick, p):
         ax.plot(x[pick], y[pick], "*", ms=18, color=ORANGE, mec=BLACK, zorder=3, label="balanced pick",
                 gid="balanced pick")
         ax.legend(fontsize=8)
-    for r, setter in ((r1, ax.set_xscale), (r2, ax.set_yscale)):
-        if log_scale(r, frame[f"{r.name}_lo95"].min(), frame[f"{r.name}_hi95"].max()):
-            setter("log")
+    for r, which in ((r1, "x"), (r2, "y")):
+        lo, hi = frame[f"{r.name}_lo95"].min(), frame[f"{r.name}_hi95"].max()
+        if log_scale(r, lo, hi):
+            log_axis(ax, which, lo, hi)
     ax.set_xlabel(label(r1.name, r1.unit) + f" ({r1.goal})")
     ax.set_ylabel(label(r2.name, r2.unit) + f" ({r2.goal})")
     ax.set_title("trade-off front, bars: 95 % prediction intervals", fontsize=10)
