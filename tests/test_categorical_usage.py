@@ -133,3 +133,28 @@ def test_log_axis_tick_labels_are_plain_numbers():
             assert shown and not any("$" in s for s in shown)
             # plain numbers at the 1-2-5 ticks inside the axis range, no minor-tick labels
             assert sorted(float(s) for s in shown) == pytest.approx(_one_two_five(lo, hi))
+
+
+def test_report_window_table_gives_a_categorical_factor_its_own_cells(toy):
+    from windowfinder.answers.results import build_window
+    from windowfinder.report import tables
+    from windowfinder.report.page import html_table
+
+    st = Study.load(toy)
+    win = build_window(st.spec, st.fit(), levels={"resin": "beta"})
+    assert win.found
+    frame = tables.window_frame(win).set_index("factor")
+    assert list(frame.columns) == ["levels", "low", "high", "unit", "tolerance (±)", "guard band"]
+    assert frame.loc["resin", "levels"] == "beta"
+    assert frame.loc["resin", ["low", "high", "tolerance (±)", "guard band"]].isna().all()
+    a = next(f for f in win.factors if f["name"] == "a")
+    assert (frame.loc["a", "low"], frame.loc["a", "high"], frame.loc["a", "tolerance (±)"]) == \
+        (a["low"], a["high"], 0.5)
+    # at beta the box must satisfy a + b <= 12 - 4 at its upper corner (closed-form truth)
+    assert frame.loc["a", "high"] + frame.loc["b", "high"] <= 12.0 - EFFECT + 1e-9
+    page = html_table(tables.window_frame(win))
+    row = page[page.index("<td>resin</td>"):].split("</tr>")[0]
+    assert "<td>beta</td>" in row and "levels:" not in row and ">0<" not in row and ">0.0<" not in row
+    # a study without categorical factors has no levels column
+    plain = tables.factor_frame([f for f in win.factors if "levels" not in f])
+    assert "levels" not in plain.columns

@@ -50,8 +50,7 @@ def of_record(c: Content) -> list[str]:
            para(f"Confidence {w['confidence']:g} for {w['provenance']['confidence_applies_to']}; lowest "
                 f"P(all limits met) inside {w['min_probability']:.3f} when it was planned.")]
     if c.window is None:
-        return out + [html_table(pd.DataFrame(w["factors"])[["name", "low", "high", "unit"]],
-                                 "Window of record")]
+        return out + [html_table(tables.factor_frame(w["factors"]), "Window of record")]
     doc = window_document(c.window, c.provenance)
     cmp = compare(e, doc, c.spec)
     frame = pd.DataFrame([{"factor": r["name"], "of record: low": r["record_low"],

@@ -9,13 +9,25 @@ import pandas as pd
 
 
 def window_frame(window) -> pd.DataFrame:
-    """Factor ranges of a found window, with tolerance and guard band."""
-    rows = [{"factor": f["name"], "low": "levels: " + ", ".join(f["levels"]), "high": "", "unit": "",
-             "tolerance (±)": 0.0, "guard band": ""} if "levels" in f else
-            {"factor": f["name"], "low": f["low"], "high": f["high"], "unit": f["unit"],
+    """Factor ranges of a found window, with tolerance and guard band (see :func:`factor_frame`)."""
+    return factor_frame(window.factors)
+
+
+def factor_frame(factors) -> pd.DataFrame:
+    """Rows of window.json ``factors``: a numeric factor's range, unit, tolerance and guard band; a
+    categorical factor's levels in a column of their own (no range, unit or tolerance: "–"). The
+    ``levels`` column is there only when some factor is categorical."""
+    blank = None   # shown as "–"
+    rows = [{"factor": f["name"], "levels": ", ".join(f["levels"]), "low": blank, "high": blank, "unit": "",
+             "tolerance (±)": blank, "guard band": blank} if "levels" in f else
+            {"factor": f["name"], "levels": blank, "low": f["low"], "high": f["high"], "unit": f.get("unit", ""),
              "tolerance (±)": f.get("tolerance") or 0.0,
-             "guard band": f"{f['guard_low']:.4g} – {f['guard_high']:.4g}"} for f in window.factors]
-    return pd.DataFrame(rows, columns=["factor", "low", "high", "unit", "tolerance (±)", "guard band"])
+             "guard band": (f"{f['guard_low']:.4g} – {f['guard_high']:.4g}" if "guard_low" in f else blank)}
+            for f in factors]
+    cols = ["factor", "levels", "low", "high", "unit", "tolerance (±)", "guard band"]
+    if not any("levels" in f for f in factors):
+        cols.remove("levels")
+    return pd.DataFrame(rows, columns=cols)
 
 
 def pick_frame(spec, tradeoff) -> pd.DataFrame:
