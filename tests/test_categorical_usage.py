@@ -158,3 +158,28 @@ def test_report_window_table_gives_a_categorical_factor_its_own_cells(toy):
     # a study without categorical factors has no levels column
     plain = tables.factor_frame([f for f in win.factors if "levels" not in f])
     assert "levels" not in plain.columns
+
+
+# ------------------------------------------------------------- campaign: one window figure, one unit
+def toy_evaluate(settings):
+    """The toy's truth plus noise (sd 0.05), seeded by the setting: a simulator for the closed loop."""
+    rng = np.random.default_rng(int(1000 * settings["a"] + 10 * settings["b"]))
+    return {"y": float(truth(settings["a"], settings["b"], settings["resin"]) + 0.05 * rng.standard_normal())}
+
+
+def test_campaign_progress_volume_is_the_window_of_the_same_runs_in_percent(tmp_path):
+    from windowfinder.answers.results import build_window
+    from windowfinder.answers.window import volume_text
+    from windowfinder.campaign.loop import ModelProgress, run_campaign
+
+    d = make_study(tmp_path / "s", runs=12)
+    tracker, lines = ModelProgress(), []
+    run_campaign(d, function=toy_evaluate, budget=16, batch=2, workers=1, propose=tracker.propose,
+                 metrics=tracker.metrics(), progress=lines.append)
+    st = Study.load(d)
+    assert len(st.runs.completed()) == 16 and len(tracker.fit_.X_runs) == 16   # not one batch behind
+    win = build_window(st.spec, st.fit())                                   # what `window` says
+    assert win.found
+    last = [ln for ln in lines if ln.startswith("16/16 runs done")][-1]
+    shown = volume_text(win.volume_share).replace(" of the studied factor space", "")
+    assert f"window volume {shown}," in last and shown.endswith(" %")

@@ -31,6 +31,7 @@ from dataclasses import asdict, dataclass, field
 import numpy as np
 import pandas as pd
 
+from windowfinder.answers.window import volume_text
 from windowfinder.errors import InputError
 from windowfinder.campaign.engines import check_count, make_engine
 from windowfinder.campaign.commands import CommandEvaluator
@@ -39,6 +40,8 @@ from windowfinder.campaign.ledger import UNSAVED, RunLedger, admissible  # noqa:
 from windowfinder.study import Study
 
 AIMS = ("window", "tradeoff", "balanced")
+# progress figures that are a share of the factor space: shown in percent, as every window volume is
+VOLUME_METRICS = {"window volume": lambda v: volume_text(v).replace(" of the studied factor space", "")}
 
 
 def suggest_runs(study: Study, count: int, aim: str) -> pd.DataFrame:
@@ -258,7 +261,8 @@ class Campaign:
                     self._say(f"warning: {name} not available ({type(e).__name__}: {one_line(e, 120)})")
                 value = None
             entry[name] = value
-            parts.append(f"{name} " + ("n/a" if value is None else f"{value:.4g}"))
+            shown = VOLUME_METRICS.get(name, lambda v: f"{v:.4g}")
+            parts.append(f"{name} " + ("n/a" if value is None else shown(value)))
         self._say(", ".join(parts))
         for note in notes:
             self._say(note)
@@ -269,20 +273,28 @@ class ModelProgress:
     """Default proposer and progress figures sharing one model fit per batch.
 
     ``window volume`` is the window's share of the studied factor space at the study's confidence (the
-    figure of ``window`` and window.json's ``volume_share``), and ``front
+    figure of ``window`` and window.json's ``volume_share``, shown in percent), and ``front
     hypervolume`` the hypervolume of the measured goal values of the runs that met every limit
     (minimisation form, reference point fixed at the first batch: the nadir of the measured values plus
-    10 % of their range). Both are "as of the latest fit", i.e. one batch behind the newest results.
+    10 % of their range). Both come from a fit on every run completed so far, the same fit as ``window``
+    on the same runs (``study.fit()``, seeded); the next proposal reuses it, so each batch costs one fit.
     """
 
     def __init__(self):
         self.fit_ = None
+        self.fitted_on_ = None   # the completed runs self.fit_ was fitted on (their csv text)
         self.ref_ = None
         self.window_ = None  # (volume, coded guard box, run ids) at the last batch
 
+    def fit(self, study: Study):
+        """``study.fit()`` on the runs completed now, refitted only when they changed."""
+        state = study.runs.completed().to_csv(index=False)
+        if self.fit_ is None or state != self.fitted_on_:
+            self.fit_, self.fitted_on_ = study.fit(), state
+        return self.fit_
+
     def propose(self, study: Study, count: int, aim: str) -> pd.DataFrame:
-        self.fit_ = study.fit()
-        return study.suggest(count, aim=aim, fit=self.fit_).frame
+        return study.suggest(count, aim=aim, fit=self.fit(study)).frame
 
     def metrics(self) -> dict:
         return {"window volume": self.window_volume, "front hypervolume": self.front_hypervolume}
@@ -291,12 +303,12 @@ class ModelProgress:
         """The window's volume (as in ``window`` and the report); with a one-line reason when it shrank
         since the last batch (:func:`windowfinder.answers.windowchange.shrink_note`)."""
         spec = study.spec
-        if self.fit_ is None or not spec.limited:
+        if self.fit_ is None or not spec.limited:   # still on the start design: no fit yet (n/a)
             return None
         from windowfinder.answers.results import feasibility_of, search_window
         from windowfinder.answers.windowchange import shrink_note
 
-        feas = feasibility_of(spec, self.fit_)
+        feas = feasibility_of(spec, self.fit(study))
         res = search_window(spec, feas, spec.confidence)
         vol = float(res.volume) if res.found else 0.0
         done = study.runs.done()
