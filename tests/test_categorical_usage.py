@@ -183,3 +183,89 @@ def test_campaign_progress_volume_is_the_window_of_the_same_runs_in_percent(tmp_
     last = [ln for ln in lines if ln.startswith("16/16 runs done")][-1]
     shown = volume_text(win.volume_share).replace(" of the studied factor space", "")
     assert f"window volume {shown}," in last and shown.endswith(" %")
+
+
+# ------------------------------------------------------------ next runs: no accidental repeats
+CONSTRAINED = STUDY + """
+[[constraint]]
+name = "a plus b"
+terms = { a = 1.0, b = 1.0 }
+max = 16.0
+"""
+
+
+def test_campaign_top_up_adds_a_new_space_filling_run_not_a_repeat(tmp_path):
+    from scipy.spatial.distance import cdist
+
+    from windowfinder.campaign.loop import run_campaign
+
+    d = make_study(tmp_path / "s", text=CONSTRAINED, runs=12)
+    run_campaign(d, function=toy_evaluate, budget=13, initial=13, batch=1, workers=1, progress=lambda s: None)
+    st = Study.load(d)
+    frame = st.runs.frame
+    assert len(frame) == 13 and frame["note"].iloc[-1] == "design space-filling (added)"
+    U = st.runs.X_coded(frame)
+    old, new = U[:12], U[12:]
+    # brute force over every allowed setting (0.5 steps, both levels, a + b <= 16): the farthest one
+    # from the 12 runs; greedy maximin on 2048 Sobol candidates must come close to it
+    g = np.arange(0.0, 10.01, 0.5)
+    A, B, R = (x.ravel() for x in np.meshgrid(g, g, [0.0, 1.0]))
+    ok = A + B <= 16.0
+    grid = np.column_stack([R[ok], A[ok] / 10.0, B[ok] / 10.0])   # coded: resin index, a, b
+    best = cdist(grid, old).min(axis=1).max()
+    got = cdist(new, old).min()
+    assert got >= 0.8 * best and got > 0.1       # was 0: the top-up repeated a run of the start design
+
+
+class NoisyStub:
+    """Linear mean, constant model sd and run-to-run noise sd (identity transform): a GP stand-in."""
+
+    def __init__(self, coef, sd, noise, d=1):
+        self.coef, self.sd, self.noise_std_ = np.asarray(coef, float), float(sd), float(noise)
+        self.X_train_ = np.zeros((1, d))
+        from windowfinder.models.transform import Transform
+
+        self.transform_ = Transform("none")
+
+    def predict(self, X, return_std=True, noise=False):
+        mean = np.asarray(X, float) @ self.coef
+        sd = np.hypot(self.sd, self.noise_std_) if noise else self.sd
+        return (mean, np.full(len(mean), sd)) if return_std else mean
+
+
+def test_tradeoff_score_ignores_a_setting_that_cannot_reach_the_confidence():
+    from scipy.stats import norm
+
+    from windowfinder.models.surrogates import Surrogates
+    from windowfinder.nextruns.suggestions import Acquisition
+
+    # g = x minimised (model sd 0.02); limit y >= 0.3 with y = x, model sd 1e-4, noise sd 0.2:
+    # a new run meets it with P = Phi((x - 0.3) / 0.2) (scipy.stats.norm), >= 0.95 for x >= 0.629
+    models = {"g": NoisyStub([1.0], 0.02, 0.0), "y": NoisyStub([1.0], 1e-4, 0.2)}
+    X_runs = np.array([[0.5], [0.7], [0.9], [1.0]])
+    acq = Acquisition(Surrogates(models), [("y", 0.3, None)], [("g", "minimize", None)], X_runs, 0.95)
+    assert acq.front_[:, 0] == pytest.approx([0.7, 0.9, 1.0])            # runs with P >= 0.95
+    x_out, x_in = np.array([[0.5]]), np.array([[0.65]])
+    assert acq.p_joint(x_out)[0] == pytest.approx(norm.cdf(1.0), abs=1e-4)   # 0.84: never reaches 0.95
+    # x = 0.5 would improve the front a lot but is not in the window however often it is run: score 0
+    assert acq.tradeoff(x_out)[0] == 0.0
+    # x = 0.65 is in the window (P = 0.96 for the mean, model sd 1e-4): the plain expected improvement
+    # of a minimised goal over the front's best 0.7, E[max(0, 0.7 - G)], G ~ N(0.65, 0.02^2), closed form
+    z = (0.7 - 0.65) / 0.02
+    exact = (0.7 - 0.65) * norm.cdf(z) + 0.02 * norm.pdf(z)
+    assert acq.tradeoff(x_in)[0] == pytest.approx(exact, rel=0.05)
+
+
+def test_a_proposed_replicate_names_the_run_it_repeats(toy):
+    from windowfinder.study import NextRuns
+
+    st = Study.load(toy)
+    made = st.runs.frame.iloc[[3, 7]]
+    frame = st.spec.labelled(made[["resin", "a", "b"]].reset_index(drop=True))
+    frame.insert(0, "run", ["R901", "R902"])
+    frame["aim"] = ["tradeoff", "window"]
+    frame.loc[1, "a"] = frame.loc[1, "a"] + 0.5            # the second row is a new setting
+    frame["repeats"] = st._repeats(frame, [True, False])
+    assert list(frame["repeats"]) == [made["run"].iloc[0], ""]
+    notes = NextRuns(frame, "", "").planned_rows(st.spec)["note"].tolist()
+    assert notes == [f"suggested (tradeoff), replicate of {made['run'].iloc[0]}", "suggested (window)"]

@@ -189,6 +189,37 @@ class Study:
         frame.attrs["notes"] = notes
         return frame
 
+    def augment(self, runs: int, seed: int | None = None) -> pd.DataFrame:
+        """``runs`` space-filling runs added to the runs already in the table (made or planned).
+
+        Each new run in turn is the allowed setting (on the step grid, inside every constraint, at a
+        level of each categorical factor) farthest from all earlier runs and picks: greedy maximin
+        (Johnson, Moore & Ylvisaker 1990; :func:`windowfinder.answers.support.space_filling_batch`). A
+        campaign tops its start up with it: a fresh design ignores the runs made and, with the same seed,
+        repeated one of them exactly. Planned rows in natural units, note ``design space-filling (added)``.
+        """
+        from windowfinder.answers.support import space_filling_batch
+
+        spec = self.spec
+        seed = spec.seed if seed is None else seed
+        frame = self.runs.frame
+        X_known = self.runs.X_coded(frame) if len(frame) else np.empty((0, spec.d))
+        U = space_filling_batch(X_known, int(runs), spec.d, seed=seed + len(frame), snap=self.snap_allowed)
+        out = spec.labelled(pd.DataFrame(spec.round_to_step(spec.to_natural(U)).reshape(-1, spec.d),
+                                         columns=spec.factor_names))
+        out.insert(0, "run", next_ids(frame["run"], len(out)))
+        for r in spec.response_names:
+            out[r] = np.nan
+        out["status"] = "planned"
+        out["note"] = "design space-filling (added)"
+        return out
+
+    def snap_allowed(self, U: np.ndarray) -> np.ndarray:
+        """Coded settings onto the step grid (and level codes); NaN rows where a constraint is broken."""
+        V = self.spec.snap_coded(U)
+        V[~self.spec.linear.feasible(V)] = np.nan
+        return V
+
     def _design_by_level(self, method: str, runs, centre: int, seed: int, blocks) -> pd.DataFrame:
         """A design balanced over the levels of the categorical factors (each level combination a slice).
 
@@ -555,21 +586,27 @@ class Study:
         planned = self.runs.X_coded(self.runs.planned())
         X_known = np.vstack([fit.X_runs, planned]) if len(planned) else fit.X_runs
 
-        lin = spec.linear
-
-        def snap(U):  # onto the step grid; NaN marks a setting that breaks a constraint (never run)
-            V = spec.snap_coded(U)
-            V[~lin.feasible(V)] = np.nan
-            return V
-
         sug = suggest(fit.surrogates, limits_of(spec), [(r.name, r.goal, r.target) for r in spec.goals],
-                      X_known, count, aim=aim, confidence=confidence, seed=seed, snap=snap,
+                      X_known, count, aim=aim, confidence=confidence, seed=seed, snap=self.snap_allowed,
                       tolerance=spec.tolerances_coded, factor_names=spec.factor_names,
                       study_dir=str(self.dir))
         frame = spec.labelled(sug.to_frame(spec.factor_names,
                                            to_natural=lambda U: spec.round_to_step(spec.to_natural(U))))
         frame.insert(0, "run", next_ids(self.runs.frame["run"], len(frame)))
+        frame["repeats"] = self._repeats(frame, sug.replicate)
         return NextRuns(frame, sug.advice, sug.message, sug)
+
+    def _repeats(self, frame: pd.DataFrame, replicate) -> list[str]:
+        """For each proposed row flagged a replicate, the id of the completed run it repeats ("" else)."""
+        made = self.runs.completed()
+        names = self.spec.factor_names
+        X_made = self.spec.level_indices(made)[names].to_numpy(float) if len(made) else np.empty((0, len(names)))
+        X_new = self.spec.level_indices(frame)[names].to_numpy(float)
+        out = []
+        for x, rep in zip(X_new, replicate):
+            same = np.flatnonzero(np.all(np.isclose(X_made, x, rtol=0, atol=1e-9), axis=1)) if rep else []
+            out.append(str(made["run"].iloc[same[0]]) if len(same) else "")
+        return out
 
 
 @dataclass
@@ -592,7 +629,8 @@ class NextRuns:
         for r in spec.response_names:
             rows[r] = np.nan
         rows["status"] = "planned"
-        rows["note"] = [f"suggested ({a})" for a in self.frame["aim"]]
+        rows["note"] = [f"suggested ({a})" + (f", replicate of {r}" if r else "")
+                        for a, r in zip(self.frame["aim"], self.frame.get("repeats", [""] * len(self.frame)))]
         return rows
 
 

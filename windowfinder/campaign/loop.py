@@ -203,8 +203,9 @@ class Campaign:
         if len(planned):
             return planned.head(room), "planned rows re-issued"
         need = min(initial, self.budget) - len(study.runs.completed())
-        if need > 0:
-            return ledger.add(study.design("space-filling", runs=need)), "space-filling design"
+        if need > 0:   # a start design, or runs added to those already made (never a repeat of one)
+            rows = study.augment(need) if len(study.runs.frame) else study.design("space-filling", runs=need)
+            return ledger.add(rows), "space-filling design"
         q = min(self.batch, room)
         propose = self.propose or suggest_runs
         frame = _proposals(study, propose(study, q, self.aim), q, self.aim)
@@ -364,6 +365,9 @@ def _proposals(study: Study, frame, count: int, aim: str) -> pd.DataFrame:
     out["status"] = "planned"
     out["note"] = (frame["note"].fillna("").astype(str).tolist() if "note" in frame.columns
                    else f"proposed ({aim})")
+    if "repeats" in frame.columns:   # a replicate is said so in runs.csv, with the run it repeats
+        out["note"] = [n + (f", replicate of {r}" if isinstance(r, str) and r else "")
+                       for n, r in zip(out["note"], frame["repeats"])]
     return out
 
 

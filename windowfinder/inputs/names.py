@@ -21,7 +21,7 @@ from __future__ import annotations
 # Columns the tool writes besides factor and response names, in any file (runs.csv: run, status, note,
 # block; next.csv; tradeoff.csv; testplan.csv; verification.csv).
 RESERVED = ("run", "status", "failed_limit", "note", "block", "point", "aim", "basis", "gain", "edge_score",
-            "p_joint", "replicate", "p_all_limits", "balanced_pick", "response", "measured", "lo95", "hi95",
+            "p_joint", "replicate", "repeats", "p_all_limits", "balanced_pick", "response", "measured", "lo95", "hi95",
             "inside_interval", "meets_limit")
 RESERVED_SUFFIXES = ("_pred", "_predicted", "_lo95", "_hi95")
 FORMULA_START = ("=", "+", "-", "@")

@@ -26,9 +26,12 @@ for identifying function threshold boundaries", NIPS 18).
 **Trade-off** (improve the constrained front). Expected hypervolume improvement (Emmerich,
 Giannakoglou & Naujoks 2006, "Single- and multiobjective evolutionary optimization assisted by
 Gaussian random field metamodels", IEEE Trans. Evol. Comput. 10(4)) in its Monte Carlo form (Daulton,
-Balandat & Bakshy 2020, qEHVI, NeurIPS), times the joint probability of meeting every limit (the usual
+Balandat & Bakshy 2020, qEHVI, NeurIPS), times the probability that the setting is feasible (the usual
 weighting of an improvement by the probability of feasibility; Schonlau, Welch & Jones 1998,
 "Global versus local search in constrained optimization of computer models", IMS Monograph Series vol. 34).
+A setting is feasible when a new run there meets every limit with probability at least ``c``, so its
+probability of feasibility is ``pi(x)`` of the edge criterion below, not the noisy ``P(all limits met)``
+of one new run (which no number of repeats raises above ``c`` where a mean lies close to a limit).
 Draws of each goal's process mean are mapped to natural units and to minimisation form (maximize:
 ``-Y``; minimize: ``Y``; target: ``|Y - target|``). The current front is the predicted medians at the
 completed runs whose joint probability reaches the confidence (predicted, not observed, values:
@@ -260,9 +263,18 @@ class Acquisition:
         return np.minimum(pi, 1.0 - pi), pi
 
     def tradeoff(self, X):
-        """Expected hypervolume improvement times the joint probability of meeting every limit."""
+        """Expected hypervolume improvement times the probability that ``X`` belongs to the window.
+
+        A setting joins the front only when a new run there meets every limit with probability at
+        least the confidence, so the improvement is weighted by ``pi`` (:meth:`window`), the posterior
+        probability that this holds for the true process means, not by the noisy probability that one
+        new run meets the limits (:meth:`p_joint`). The latter stays below the confidence at a setting
+        whose mean sits close to a limit however often it is repeated (run-to-run noise does not
+        shrink), and it made such a setting, well measured and just outside the window, the best
+        trade-off pick again and again. Without limits ``pi`` is P(works).
+        """
         gain = expected_improvement(self.objectives(X, self.eps_goal_), self.front_, self.ref_)
-        return gain * self.p_joint(X)
+        return gain * (self.window(X)[1] if self.limits else self.p_works(X))
 
     def believe(self, x):
         """Kriging believer: a new state with every model conditioned on its predicted mean at ``x``."""
