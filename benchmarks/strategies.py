@@ -39,11 +39,11 @@ from windowfinder.cases import case_dir
 from windowfinder.inputs.designs import central_composite, make_design, one_factor_at_a_time
 from windowfinder.errors import InputError
 from windowfinder.answers.feasibility import Feasibility
-from windowfinder.answers.hypervolume import hypervolume
+from windowfinder.answers.hypervolume import hypervolume, normalised_igd
 from windowfinder.nextruns import suggest
 from windowfinder.study import Study
 from windowfinder.models.surrogates import Surrogates
-from windowfinder.answers.tradeoff import find_tradeoff, normalised_igd
+from windowfinder.answers.tradeoff import find_tradeoff
 from windowfinder.answers.window import find_window
 
 from .problems import CONFIDENCE, Problem, box_precision, get_problem, non_dominated, truth_problem

@@ -23,7 +23,7 @@ from benchmarks.problems import (box_precision, eroded, get_problem, grid, large
 from benchmarks.strategies import one_shot_design
 from windowfinder.cases import load_simulator
 from windowfinder.inputs.designs import central_composite
-from windowfinder.answers.tradeoff import normalised_igd
+from windowfinder.answers.hypervolume import normalised_igd
 
 
 def _sobol(d, n=512, seed=0):

@@ -1,4 +1,5 @@
-"""Tests for windowfinder.answers.tradeoff: constrained trade-off search on Gaussian-process surrogates.
+"""Tests for windowfinder.answers.tradeoff (constrained trade-off search on Gaussian-process surrogates),
+with its desirability pick (answers.desirability) and the front distance that judges it (IGD, answers.hypervolume).
 
 Every expectation comes from outside the module: pymoo's test problems with their known Pareto fronts,
 a brute-force optimum, closed-form knee points and hand-computed desirabilities.
@@ -12,13 +13,9 @@ from scipy.stats import norm, qmc
 
 from windowfinder.errors import InputError
 from windowfinder.models.gp import GPModel
-from windowfinder.answers.tradeoff import (
-    desirability,
-    find_tradeoff,
-    igd,
-    knee_point,
-    normalised_igd,
-)
+from windowfinder.answers.desirability import desirability
+from windowfinder.answers.hypervolume import igd, normalised_igd
+from windowfinder.answers.tradeoff import find_tradeoff, knee_point
 
 
 # --------------------------------------------------------------------------------------------------

@@ -1,4 +1,4 @@
-"""Hypervolume and hypervolume improvement of candidate objective vectors (all goals minimised).
+"""Measures of a front (all goals minimised): hypervolume, its improvement, distance to a reference front.
 
 The hypervolume of a set ``P`` with reference point ``r`` is the Lebesgue measure of the region that
 the points of ``P`` dominate and that dominates ``r`` (Zitzler & Thiele 1998, "Multiobjective
@@ -10,12 +10,16 @@ vector ``y`` brings is ``HV(P + {y}) - HV(P)``.
   region not yet dominated (Emmerich, Deutz & Klinkenberg 2011, "Hypervolume-based expected
   improvement: monotonicity properties and exact computation", IEEE CEC, section III);
 * three or more goals: pymoo's hypervolume (:class:`pymoo.indicators.hv.HV`) per vector.
+
+How close a front comes to a known one is the inverted generational distance (:func:`igd`,
+:func:`normalised_igd`, pymoo's :class:`pymoo.indicators.igd.IGD`).
 """
 
 from __future__ import annotations
 
 import numpy as np
 from pymoo.indicators.hv import HV
+from pymoo.indicators.igd import IGD
 
 CHUNK = 8192  # rows of candidate vectors handled at once by the two-goal staircase
 
@@ -99,3 +103,26 @@ def expected_improvement(samples, front, ref) -> np.ndarray:
     samples = np.asarray(samples, dtype=float)
     n, S, m = samples.shape
     return improvement(samples.reshape(n * S, m), front, ref).reshape(n, S).mean(axis=1)
+
+
+def igd(F, F_ref) -> float:
+    """Inverted generational distance of ``F`` to the reference front ``F_ref`` (pymoo ``IGD``).
+
+    Mean over the reference points of the Euclidean distance to the nearest point of ``F``
+    (Coello Coello & Reyes Sierra, "A study of the parallelization of a coevolutionary
+    multi-objective evolutionary algorithm", MICAI 2004).
+    """
+    return float(IGD(np.asarray(F_ref, dtype=float))(np.asarray(F, dtype=float)))
+
+
+def normalised_igd(F, F_ref) -> float:
+    """IGD after scaling every goal by the reference front's ideal and nadir.
+
+    Both fronts are mapped by ``(f - ideal) / (nadir - ideal)`` with ``ideal`` and ``nadir`` the
+    column minimum and maximum of ``F_ref`` (pymoo ``IGD(..., zero_to_one=True)``), so the value
+    reads as a fraction of the reference front's extent in each goal, comparable across problems.
+    """
+    F_ref = np.asarray(F_ref, dtype=float)
+    ideal, nadir = F_ref.min(axis=0), F_ref.max(axis=0)
+    nadir = np.where(nadir > ideal, nadir, ideal + 1.0)
+    return float(IGD(F_ref, zero_to_one=True, ideal=ideal, nadir=nadir)(np.asarray(F, dtype=float)))

@@ -439,7 +439,8 @@ def build_tradeoff(spec: StudySpec, fit, confidence: float | None = None, mean_o
     confidence, or that rounding moved across a constraint, is dropped, and the balanced pick is chosen
     among the rest.
     """
-    from windowfinder.answers.tradeoff import desirability, find_tradeoff, knee_point
+    from windowfinder.answers.desirability import desirability
+    from windowfinder.answers.tradeoff import find_tradeoff, knee_point
 
     confidence = spec.confidence if confidence is None else float(confidence)
     seed = spec.seed if seed is None else seed
