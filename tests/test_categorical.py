@@ -356,7 +356,7 @@ def lasercut(tmp_path):
 
 
 def test_suggestions_and_tradeoff_stay_on_levels_and_inside_the_constraint(lasercut):
-    from windowfinder.answers.results import build_tradeoff
+    from windowfinder.answers.tradeofftable import build_tradeoff
 
     st = Study.load(lasercut)
     fit = st.fit()

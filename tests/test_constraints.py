@@ -258,7 +258,7 @@ def test_window_shrink_when_search_ignores_constraint(fitted):
 
 
 def test_tradeoff_points_inside_constraint_and_on_grid(fitted):
-    from windowfinder.answers.results import build_tradeoff
+    from windowfinder.answers.tradeofftable import build_tradeoff
 
     study, fit = fitted
     tr = build_tradeoff(study.spec, fit, pop_size=40, n_gen=25)

@@ -20,7 +20,8 @@ import pytest
 from scipy.spatial.distance import cdist
 
 from windowfinder import cases
-from windowfinder.answers.results import build_tradeoff, build_window
+from windowfinder.answers.results import build_window
+from windowfinder.answers.tradeofftable import build_tradeoff
 from windowfinder.answers.support import judge_support, runs_needed, space_filling_batch
 from windowfinder.cli import main
 from windowfinder.inputs.designs import maximin_latin_hypercube, sobol

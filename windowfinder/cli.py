@@ -232,7 +232,7 @@ def cmd_window(args):
 
 
 def cmd_tradeoff(args):
-    from windowfinder.answers.results import build_tradeoff
+    from windowfinder.answers.tradeofftable import build_tradeoff
     from windowfinder.export.files import write_csv
     from windowfinder.export.provenance import provenance, write_sidecar
 
@@ -306,7 +306,8 @@ def cmd_run(args):
 def cmd_report(args):
     import pandas as pd
 
-    from windowfinder.answers.results import build_tradeoff, build_window
+    from windowfinder.answers.results import build_window
+    from windowfinder.answers.tradeofftable import build_tradeoff
     from windowfinder.report import write_report
 
     study = _load(args)

@@ -74,7 +74,7 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
         Default :func:`windowfinder.answers.results.build_window` at the study's confidence (None when no
         response has a limit).
     tradeoff : TradeoffTable, optional
-        Default :func:`windowfinder.answers.results.build_tradeoff` (None when no response has a goal).
+        Default :func:`windowfinder.answers.tradeofftable.build_tradeoff` (None when no response has a goal).
     suggestions : DataFrame, optional
         Proposed next runs (``run`` and factor columns in natural units, any further columns); shown in
         their own section and on the maps.
@@ -91,7 +91,8 @@ def write_report(study, fit=None, window=None, tradeoff=None, suggestions=None, 
     pathlib.Path
         The file written (atomically: temporary file, fsync, rename).
     """
-    from windowfinder.answers.results import build_tradeoff, build_window
+    from windowfinder.answers.results import build_window
+    from windowfinder.answers.tradeofftable import build_tradeoff
     from windowfinder.answers.influence import model_indices
 
     spec = study.spec
