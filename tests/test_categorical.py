@@ -84,7 +84,8 @@ def test_levels_make_a_categorical_factor_on_a_unit_step_grid():
     ('name = "gas"\nlevels = ["pure", "pure"]', "duplicate level 'pure'"),
     ('name = "gas"\nlevels = ["pure", 2]', "list of names in quotes"),
     ('name = "gas"\nlevels = ["pure", " mix"]', "begins or ends with a space"),
-    ('name = "gas"\nlevels = ["pure", "mix", "argon"]', "only two-level"),
+    ('name = "gas"\nlevels = [' + ", ".join(f'"g{i}"' for i in range(17)) + "]",
+     "17 level combinations; at most 16"),
 ])
 def test_bad_levels_are_refused_in_one_line(tmp_path, capsys, factor, needle):
     text = HEAD.split('[[factor]]\nname = "gas"')[0] + "[[factor]]\n" + factor + "\n" + LINEAR_RESPONSE

@@ -514,6 +514,8 @@ class Study:
         :mod:`windowfinder.models.choice`); a string overrides it for every response.
         """
         from windowfinder.models.diagnostics import diagnose
+        from windowfinder.models.encoding import LevelEncoder
+        from windowfinder.models.polynomial import full_terms
         from windowfinder.models.surrogates import Surrogates
 
         X, Y, works = self.training_data()
@@ -530,10 +532,12 @@ class Study:
             raise InputError(f"{self.runs_path.name}: censored values (failed_limit, or '<' values below a "
                              "detection limit) together with a block column are not supported yet; clear "
                              "failed_limit (the runs then feed the failure model) or the block column")
+        enc = LevelEncoder(self.spec.level_map)
+        names = self.spec.term_names   # the polynomial's columns: indicators for categorical factors
         for r in self.spec.responses:
             n = int(np.isfinite(Y[r.name]).sum())
-            need = {"quadratic": (d + 1) * (d + 2) // 2 + 1 - len(self.spec.categorical),
-                    "linear": d + 2}.get(kinds[r.name], 3)
+            need = {"quadratic": len(full_terms(len(names), 2, enc.indicators(d), enc.groups(d))) + 1,
+                    "linear": len(names) + 2}.get(kinds[r.name], 3)
             if n < need:
                 raise InputError(f"{self.runs_path.name}: response '{r.name}' has {n} measured runs; "
                                  f"fitting a {kinds[r.name]} model needs at least {need}; add runs first "
@@ -545,7 +549,7 @@ class Study:
             sur = Surrogates.fit_arrays(X, Y, transforms, works=works if (~works).any() else None,
                                         kind=kinds, n_restarts=n_restarts, seed=self.spec.seed,
                                         blocks=blocks, censored=censored,
-                                        categorical=tuple(self.spec.categorical))
+                                        categorical=enc)
         diags = []
         for r in self.spec.responses:
             y = Y[r.name]
@@ -553,7 +557,7 @@ class Study:
             y = None if blocks is not None or r.name in censored else y[np.isfinite(y)]
             diags.append(diagnose(sur.models[r.name], y, r.name, self.spec.factor_names,
                                   self.spec.spans, choice=sur.choices.get(r.name),
-                                  term_names=self.spec.term_names))
+                                  term_names=names))
         warnings = list(self.runs.warnings)
         ids = self.runs.completed()["run"].astype(str).to_numpy()
         for r in self.spec.responses:

@@ -7,7 +7,10 @@ other combination with the same adversarial verification (:class:`~windowfinder.
 BoxVerifier`: corners, faces, centre, Sobol points, local search over its guard box). A box found at one
 level is tight there, so it seldom holds at another even when the levels behave alike; hence one more
 search runs on the lowest probability over all combinations, ``min_c P(x, c)``, whose boxes hold on every
-combination. The window is the candidate of largest volume, together with every combination on which its
+combination; with three or more combinations also on the ``k`` combinations with the largest own boxes,
+for each ``k`` whose bound (``k`` times the smallest of those boxes) could beat the best so far, so that
+a bad level in the middle of a list (``A``, ``B`` bad, ``C``) does not cost ``A`` and ``C`` their shared
+box. The window is the candidate of largest volume, together with every combination on which its
 guard box meets the confidence. Its volume is the numeric box's share of the numeric factor space times
 the share of level combinations it holds on.
 """
@@ -78,20 +81,34 @@ def find_level_window(spec, prob_fn, confidence, snap, set_point=None, seed=0, c
     if not found:   # the combination that came closest speaks for all
         i = int(np.argmax([r.best_probability for r in results]))
         return _embedded(spec, results[i], combos[i], [])
-    single = _spread(spec, results, combos, found, confidence, t, seed, n_check, set_point, at)
-    if len(combos) < 2:
-        return single
-    fns = [at(c) for c in combos]
-    joint = find_window(lambda U: np.min([f(U) for f in fns], axis=0), sub.d, confidence, **search)
-    if not joint.found or volume(joint.lower, joint.upper) * len(combos) <= single.volume * \
-            len(spec.level_combinations()):
-        return single
+    best = _spread(spec, results, combos, found, confidence, t, seed, n_check, set_point, at)
+    # boxes holding on several combinations: min P over the k combinations with the largest own boxes
+    # (k = 2 .. all); such a box is no larger than the smallest own box among them, which prunes k
+    order = sorted(found, key=lambda i: -results[i].volume)
+    total = len(spec.level_combinations())
+    for k in range(2, len(combos) + 1):
+        group = combos if k == len(combos) else [combos[i] for i in order[:k]]
+        if k < len(combos) and (k > len(order) or results[order[k - 1]].volume * k / total <= best.volume):
+            continue
+        cand = _joint(spec, group, at, confidence, search, total)
+        if cand is not None and cand.volume > best.volume:
+            best = cand
+    return best
+
+
+def _joint(spec, group, at, confidence, search, total):
+    """The box of ``min_c P(x, c)`` over the combinations ``group`` (None when none is found)."""
+    fns = [at(c) for c in group]
+    joint = find_window(lambda U: np.min([f(U) for f in fns], axis=0), spec.numeric_part().d, confidence,
+                        **search)
+    if not joint.found:
+        return None
     x = joint.worst_point
-    c = combos[int(np.argmin([f(x[None, :])[0] for f in fns]))]
-    out = _embedded(spec, joint, combos[0], combos)
+    c = group[int(np.argmin([f(x[None, :])[0] for f in fns]))]
+    out = _embedded(spec, joint, group[0], group)
     out.worst_point = _full(spec, x, spec.level_codes(c))
-    out.volume = float(volume(joint.lower, joint.upper)) * len(combos) / len(spec.level_combinations())
-    out.message = _message(spec, combos, joint.min_probability, confidence)
+    out.volume = float(volume(joint.lower, joint.upper)) * len(group) / total
+    out.message = _message(spec, group, joint.min_probability, confidence)
     return out
 
 

@@ -266,10 +266,17 @@ class StudySpec:
         return np.array([i / self.factors[j].span for j, i in zip(self.categorical, combo)], dtype=float)
 
     @property
+    def level_map(self) -> dict[int, tuple[str, ...]]:
+        """``{column: level names}`` of the categorical factors (what the models' encoder takes)."""
+        return {j: self.factors[j].levels for j in self.categorical}
+
+    @property
     def term_names(self) -> list[str]:
-        """Column names for model term tables: a categorical factor's indicator is ``gas[mix]`` (1 at its
-        second level, 0 at its first)."""
-        return [f"{f.name}[{f.levels[1]}]" if f.is_categorical else f.name for f in self.factors]
+        """Column names for polynomial term tables: a categorical factor has one indicator per level
+        after its first, ``supplier[B]``, ``supplier[C]`` (1 at that level, 0 elsewhere; treatment
+        coding, :class:`windowfinder.models.encoding.LevelEncoder`)."""
+        return [n for f in self.factors
+                for n in ([f"{f.name}[{v}]" for v in f.levels[1:]] if f.is_categorical else [f.name])]
 
     def numeric_part(self) -> "StudySpec":
         """The study without its categorical factors (constraints weigh numeric factors only)."""
@@ -524,9 +531,6 @@ class _Parser:
         if len(levels) < 2:
             self.fail(where, f"levels = {_short(levels)}: a categorical factor needs at least two levels "
                       "(with one level, leave the factor out of the study)")
-        if len(levels) > 2:
-            self.fail(where, f"levels = {_short(levels)}: only two-level categorical factors are supported "
-                      "so far; split the study by level or merge levels")
         for v in levels:
             if not v.strip():
                 self.fail(where, "levels: a level name is empty")

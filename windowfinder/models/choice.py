@@ -29,6 +29,7 @@ from scipy import stats
 from windowfinder.errors import InputError
 from windowfinder.inputs.spec import MODELS
 from windowfinder.models.blocks import fit_blocked
+from windowfinder.models.encoding import LevelEncoder
 from windowfinder.models.gp import GPModel
 from windowfinder.models.polynomial import PolynomialModel, backward_eliminate
 
@@ -94,18 +95,22 @@ class ModelChoice:
         return f"LOO log density {', '.join(parts)} -> {self.chosen} ({how}{terms})"
 
 
-def _polynomial(X, y, transform, terms=None, degree=2, categorical=()):
+def _polynomial(X, y, transform, terms=None, degree=2, enc=None):
+    """Polynomial on the treatment-coded columns of ``X`` (indicator terms of categorical factors)."""
+    enc = LevelEncoder.of(enc)
+    d = X.shape[1]
     return PolynomialModel(terms=terms, transform=transform, degree=degree,
-                           categorical=tuple(categorical)).fit(X, y)
+                           categorical=enc.indicators(d), groups=enc.groups(d)).fit(
+        enc.transform(X, "treatment"), y)
 
 
-def _candidates_polynomial(X, y, transform, notes, categorical=()):
+def _candidates_polynomial(X, y, transform, notes, enc=None):
     """Full second-order (or, failing that, first-order) model and its AICc reduction."""
     out = {}
     full = None
     for degree, name in ((2, "quadratic"), (1, "linear")):
         try:
-            m = _polynomial(X, y, transform, degree=degree, categorical=categorical)
+            m = _polynomial(X, y, transform, degree=degree, enc=enc)
         except InputError as err:
             notes.append(f"{name}: {err}")
             continue
@@ -117,22 +122,31 @@ def _candidates_polynomial(X, y, transform, notes, categorical=()):
         return out
     kept = backward_eliminate(full._coded(full.X_train_), full.z_train_, full.terms_)
     if kept != full.terms_:
-        out["reduced"] = _polynomial(X, y, transform, terms=kept, categorical=categorical)
+        out["reduced"] = _polynomial(X, y, transform, terms=kept, enc=enc)
     return out
+
+
+def _gp(X, y, transform, n_restarts, seed, enc=None):
+    """Gaussian process on the one-hot columns of ``X``."""
+    return GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(
+        LevelEncoder.of(enc).transform(X, "onehot"), y)
 
 
 def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None, categorical=()):
     """The fitted candidates of ``model = "auto"``: ``{"gp": ..., "quadratic" | "linear": ...,
-    "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``)."""
+    "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``).
+    Fitted on the encoded columns (:class:`~windowfinder.models.encoding.LevelEncoder`), not wrapped."""
     notes = [] if notes is None else notes
-    out = {"gp": GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)}
-    out.update(_candidates_polynomial(X, y, transform, notes, categorical))
+    enc = LevelEncoder.of(categorical)
+    out = {"gp": _gp(X, y, transform, n_restarts, seed, enc)}
+    out.update(_candidates_polynomial(X, y, transform, notes, enc))
     return out
 
 
-def _choice(requested, key, m, scores, notes=()):
+def _choice(requested, key, m, scores, notes=(), enc=None, X=None):
     terms = m.feature_names() if isinstance(m, PolynomialModel) else []
-    return m, ModelChoice(requested, key, scores, list(notes), terms)
+    scheme = "treatment" if isinstance(m, PolynomialModel) else "onehot"
+    return LevelEncoder.of(enc).wrap(m, scheme, X), ModelChoice(requested, key, scores, list(notes), terms)
 
 
 def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blocks=None, categorical=()):
@@ -149,10 +163,13 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     blocks : array (n,) or None
         Block label per run: the Gaussian process with a random offset per block
         (:func:`windowfinder.models.blocks.fit_blocked`); ``model`` must then be ``"gp"`` or ``"auto"``.
-    categorical : tuple of int
-        Columns of two-level categorical factors (0/1): indicator terms in the polynomials. The Gaussian
-        process takes them as they are: its own length scale on a 0/1 column gives the exchangeable
-        correlation between the two levels (Qian, Wu & Wu 2008).
+    categorical : LevelEncoder, dict[int, levels] or tuple of int
+        The categorical columns and their levels (a tuple: two-level factors). Each model sees them
+        through :class:`~windowfinder.models.encoding.LevelEncoder`: the Gaussian process one indicator
+        column per level (two-level factors: their 0/1 column, whose own length scale gives the
+        exchangeable correlation of Qian, Wu & Wu 2008), the polynomials ``L - 1`` indicator terms
+        (treatment coding). A model fitted on expanded columns comes back as an
+        :class:`~windowfinder.models.encoding.EncodedModel`, so it takes the study's coded settings.
 
     Returns
     -------
@@ -161,20 +178,22 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     if model not in MODELS:
         raise InputError(f"model '{model}' is unknown; use one of {', '.join(MODELS)}")
     notes = []
+    enc = LevelEncoder.of(categorical)
     if blocks is not None:
         if model not in ("gp", "auto"):
             raise InputError(f"model '{model}' cannot carry block offsets; use model = 'gp' or 'auto', or "
                              "remove the block column")
-        m = fit_blocked(GPModel(transform=transform, n_restarts=n_restarts, random_state=seed), X, y, blocks)
+        m = fit_blocked(GPModel(transform=transform, n_restarts=n_restarts, random_state=seed),
+                        enc.transform(X, "onehot"), y, blocks)
         return _choice(model, "gp", m, {"gp": loo_log_density(m)},
-                       ["runs in blocks: the Gaussian process with a random offset per block"])
+                       ["runs in blocks: the Gaussian process with a random offset per block"], enc, X)
     if model == "gp":
-        m = GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(X, y)
-        return _choice(model, "gp", m, {"gp": loo_log_density(m)})
+        m = _gp(X, y, transform, n_restarts, seed, enc)
+        return _choice(model, "gp", m, {"gp": loo_log_density(m)}, (), enc, X)
     if model in ("quadratic", "linear"):
-        m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1, categorical=categorical)
-        return _choice(model, model, m, {model: loo_log_density(m)})
-    cands = candidates(X, y, transform, n_restarts, seed, notes, categorical)
+        m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1, enc=enc)
+        return _choice(model, model, m, {model: loo_log_density(m)}, (), enc, X)
+    cands = candidates(X, y, transform, n_restarts, seed, notes, enc)
     scores = {k: loo_log_density(m) for k, m in cands.items()}
     best = "gp"
     for k, s in scores.items():
@@ -183,5 +202,5 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     for k, s in scores.items():
         if not np.isfinite(s):
             notes.append(f"{k}: some run cannot be predicted from the others; not a candidate")
-    return _choice("auto", best, cands[best], scores, notes)
+    return _choice("auto", best, cands[best], scores, notes, enc, X)
 

@@ -160,23 +160,40 @@ def _inactive(model, j: int) -> bool:
 
 
 def _length_scale_checks(model, response, factor_names, factor_spans):
-    """Length scales in factor units and plain-words warnings for those at a bound."""
+    """Length scales in factor units and plain-words warnings for those at a bound.
+
+    A model on one-hot columns (:class:`~windowfinder.models.encoding.EncodedModel`) has one length
+    scale per level of a factor with more than two levels, reported as ``factor[level]`` (an indicator
+    has no unit); the activity check is per factor.
+    """
     coded = np.asarray(getattr(model, "length_scales_", []), dtype=float)
     if model.kind != "gp" or coded.size == 0:
         return {}, []
-    if len(factor_names) != coded.size or len(factor_spans) != coded.size:
+    owner = list(range(len(factor_names)))
+    labels, spans = list(factor_names), list(factor_spans)
+    if hasattr(model, "column_names") and len(factor_names) == model.X_train_.shape[1]:
+        layout = model.encoder.layout(len(factor_names), model.scheme)
+        owner = [j for j, _ in layout]
+        labels = model.column_names(factor_names)
+        spans = [factor_spans[j] if k is None else 1.0 for j, k in layout] if len(factor_spans) == len(
+            factor_names) else []
+    if len(labels) != coded.size or len(spans) != coded.size:
         raise InputError(f"response {response}: the model has {coded.size} factors but "
                          f"{len(factor_names)} names and {len(factor_spans)} spans were given")
-    scales = {str(f): float(c * s) for f, c, s in zip(factor_names, coded, factor_spans)}
+    scales = {str(f): float(c * s) for f, c, s in zip(labels, coded, spans)}
     notes = []
     low = LENGTH_SCALE_BOUNDS[0]
-    for f, c in zip(factor_names, coded):
+    at_low = set()
+    for f, c, j in zip(labels, coded, owner):
         if c <= low * BOUND_SLACK:
+            at_low.add(j)
             notes.append(f"response changes faster along {f} than the runs can resolve (length scale at "
                          f"its lower bound); add runs along {f} or narrow its range")
-        elif _inactive(model, list(factor_names).index(f)):
-            notes.append(f"factor {f} looks inactive (across its range the model's prediction moves less "
-                         "than the run-to-run scatter or 5 % of the strongest factor's effect)")
+    for j in dict.fromkeys(owner):
+        if j not in at_low and _inactive(model, j):
+            notes.append(f"factor {factor_names[j]} looks inactive (across its range the model's "
+                         "prediction moves less than the run-to-run scatter or 5 % of the strongest "
+                         "factor's effect)")
     noise_var = (model.noise_std_ / model.y_scale_) ** 2
     if noise_var <= NOISE_BOUNDS[0] * BOUND_SLACK ** 2:
         notes.append("model passes through every run (noise estimated near zero); replicate runs would "
@@ -236,8 +253,8 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     choice : ModelChoice or None
         Recorded as ``choice``.
     term_names : sequence of str or None
-        Column names for a polynomial's term table (``gas[mix]`` for a categorical factor's indicator);
-        default ``factor_names``.
+        Column names for a polynomial's term table (``gas[mix]`` for a categorical factor's indicator,
+        one per level after the first, :attr:`StudySpec.term_names`); default ``factor_names``.
 
     Returns
     -------
@@ -297,7 +314,7 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
     terms = []
     if hasattr(model, "term_table"):
         names = list(term_names or factor_names)   # term_names: gas[mix] for a categorical factor
-        names = names if len(names) == model.X_train_.shape[1] else None
+        names = names if len(names) == getattr(model, "model_columns_", model.X_train_.shape[1]) else None
         terms = model.term_table(names).to_dict("records")
     z_bar = float(np.mean(model.z_train_))
     slope = float(tr.inverse_slope(z_bar))

@@ -23,16 +23,19 @@ from windowfinder.models.transform import _as_transform
 CRITERIA = ("aicc", "bic")
 
 
-def full_terms(d, degree=2, categorical=()):
+def full_terms(d, degree=2, categorical=(), groups=()):
     """Terms of the full polynomial: intercept, linear, then (degree 2) interactions row by row and squares.
 
-    ``categorical``: columns holding a two-level indicator (0/1); they get no square, which would repeat
+    ``categorical``: columns holding a level indicator (0/1); they get no square, which would repeat
     the indicator itself (dummy-variable regression, Montgomery, Peck & Vining 2012, *Introduction to
     Linear Regression Analysis*, 5th ed., §8.1); their interactions with the other factors stay.
+    ``groups``: tuples of indicator columns of one factor with more than two levels (treatment coding);
+    products within a group are zero at every run and are left out.
     """
+    same = {(i, j) for g in groups for i in g for j in g if i < j}
     terms = [(), *[(i,) for i in range(d)]]
     if degree == 2:
-        terms += [(i, j) for i in range(d) for j in range(i + 1, d)]
+        terms += [(i, j) for i in range(d) for j in range(i + 1, d) if (i, j) not in same]
         terms += [(i, i) for i in range(d) if i not in set(categorical)]
     return terms
 
@@ -152,8 +155,11 @@ class PolynomialModel(_ResponseModel):
         Predictions of the full polynomial do not depend on it (a reduced one does, since dropping a term
         means something different in the two codings).
     categorical : tuple of int
-        Columns of two-level categorical factors: always indicator (dummy) columns, 0 at the first level
-        and 1 at the second, whatever ``coding`` says, and without a square term (:func:`full_terms`).
+        Indicator (dummy) columns of categorical factors: 0/1 whatever ``coding`` says, and without a
+        square term (:func:`full_terms`); a two-level factor is 1 at its second level.
+    groups : tuple of tuple of int
+        Indicator columns of one factor with more than two levels (treatment coding,
+        :class:`windowfinder.models.encoding.LevelEncoder`): no products among them.
 
     Attributes
     ----------
@@ -170,13 +176,15 @@ class PolynomialModel(_ResponseModel):
         freedom.
     """
 
-    def __init__(self, terms=None, transform="none", bounds=None, degree=2, coding="pm1", categorical=()):
+    def __init__(self, terms=None, transform="none", bounds=None, degree=2, coding="pm1", categorical=(),
+                 groups=()):
         self.terms = terms
         self.transform = transform
         self.bounds = bounds
         self.degree = degree
         self.coding = coding
         self.categorical = categorical
+        self.groups = groups
 
     @property
     def kind(self):
@@ -186,7 +194,7 @@ class PolynomialModel(_ResponseModel):
             return "quadratic" if self.terms is None and self.degree == 2 else "polynomial"
         d = self.X_train_.shape[1]
         for name, deg in (("linear", 1), ("quadratic", 2)):
-            if list(terms) == full_terms(d, deg, self.categorical):
+            if list(terms) == full_terms(d, deg, self.categorical, self.groups):
                 return name
         return "reduced"
 
@@ -221,7 +229,7 @@ class PolynomialModel(_ResponseModel):
             raise InputError(f"polynomial model: degree must be 1 or 2 and coding pm1 or unit, "
                              f"got {self.degree}, {self.coding}")
         X, y = _check_xy(X, y)
-        terms = (full_terms(X.shape[1], self.degree, self.categorical) if self.terms is None
+        terms = (full_terms(X.shape[1], self.degree, self.categorical, self.groups) if self.terms is None
                  else [tuple(t) for t in self.terms])
         if () not in terms or any(max(t, default=-1) >= X.shape[1] for t in terms):
             raise InputError("polynomial model: the terms must include the intercept () and name only "

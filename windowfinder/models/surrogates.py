@@ -10,6 +10,7 @@ from windowfinder.errors import InputError
 from windowfinder.models.base import _check_xy
 from windowfinder.models.choice import MODELS, fit_response
 from windowfinder.models.censored import fit_censored
+from windowfinder.models.encoding import LevelEncoder
 from windowfinder.models.failure import FailureModel
 from windowfinder.models.transform import Transform
 
@@ -72,10 +73,14 @@ class Surrogates:
             (one each, or one per censored run); they enter that response's model
             as censored values (:func:`windowfinder.models.censored.fit_censored`) and should be passed
             with ``works`` True, since the limit explains them.
-        categorical : tuple of int
-            Columns of two-level categorical factors (0/1 in coded units), see
-            :func:`windowfinder.models.choice.fit_response`.
+        categorical : LevelEncoder, dict[int, levels] or tuple of int
+            Categorical columns and their levels (a tuple: two-level factors). Every model (responses,
+            censored refits, blocks, the failure model) sees them through one
+            :class:`~windowfinder.models.encoding.LevelEncoder`: one-hot columns for the Gaussian
+            processes and the failure model, indicator terms for polynomials
+            (:func:`windowfinder.models.choice.fit_response`); the fitted models take coded settings.
         """
+        enc = LevelEncoder.of(categorical)
         kinds = {name: (kind.get(name, "gp") if isinstance(kind, dict) else kind) for name in Y}
         for k in kinds.values():
             if k not in MODELS:
@@ -99,15 +104,17 @@ class Surrogates:
                 models[name], choices[name] = fit_response(X[rows], y[rows], kinds[name], t,
                                                            n_restarts=n_restarts, seed=seed,
                                                            blocks=None if blocks is None else blocks[rows],
-                                                           categorical=categorical)
+                                                           categorical=enc)
                 cens = (censored or {}).get(name)
                 if cens is not None and np.asarray(cens[0], bool).any():   # refit the chosen model
                     mask = np.asarray(cens[0], bool)
-                    models[name] = fit_censored(copy.copy(models[name]), X[rows & ~mask], y[rows & ~mask],
-                                                X[mask], cens[1], cens[2])
+                    models[name] = enc.refit(
+                        models[name], lambda m, A, B: fit_censored(copy.copy(m), A, y[rows & ~mask], B,
+                                                                   cens[1], cens[2]),
+                        X[rows & ~mask], X[mask])
             except InputError as err:
                 raise InputError(f"response {name}: {err}") from None
         failure = None
         if works is not None and not ok.all():
-            failure = FailureModel(random_state=seed).fit(X, ok)
+            failure = enc.wrap(FailureModel(random_state=seed).fit(enc.transform(X, "onehot"), ok), "onehot", X)
         return cls(models, failure, choices)

@@ -186,7 +186,8 @@ def models(c: Content) -> str:
             row[f"LOO RMSE{shown}"] = d.loo_rmse
         row.update({f"LOO RMSE ({r.unit})": d.loo_rmse_natural, "95 % coverage": d.coverage95,
                     f"noise sd ({r.unit})": d.noise_sd})
-        row.update({f"length scale {k} ({spec.factor(k).unit})": v for k, v in d.length_scales.items()})
+        units = {f.name: f" ({f.unit})" for f in spec.factors}   # supplier[A]: a level's, no unit
+        row.update({f"length scale {k}{units.get(k, '')}": v for k, v in d.length_scales.items()})
         text, bad = verdict(d)
         out.append(f"<h3>{esc(r.name)}{' (safety)' if r.is_safety else ''}</h3>")
         out.append(html_table(pd.DataFrame([row])))
