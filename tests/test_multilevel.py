@@ -15,37 +15,18 @@ from windowfinder.inputs.designs import is_latin
 from windowfinder.models.encoding import EncodedModel, LevelEncoder
 from windowfinder.study import Study
 
+from test_categorical import HEAD, LINEAR_RESPONSE
+
 LEVELS = ("A", "B", "C")
 
 
 def _text(levels=LEVELS, model="linear"):
+    """The two-level study of tests/test_categorical.py with a factor ``supplier`` of ``levels``."""
     quoted = ", ".join(f'"{v}"' for v in levels)
-    return f"""\
-[study]
-name = "supplier study"
-seed = 4
-confidence = 0.9
-
-[[factor]]
-name = "a"
-low = 0.0
-high = 10.0
-
-[[factor]]
-name = "b"
-low = 0.0
-high = 10.0
-
-[[factor]]
-name = "supplier"
-levels = [{quoted}]
-
-[[response]]
-name = "y"
-goal = "minimize"
-max = 12.0
-model = "{model}"
-"""
+    head = HEAD.replace('name = "gas"\nlevels = ["pure", "mix"]', f'name = "supplier"\nlevels = [{quoted}]')
+    assert "supplier" in head
+    return head.replace('name = "gas study"', 'name = "supplier study"') + LINEAR_RESPONSE.replace(
+        'model = "linear"', f'model = "{model}"')
 
 
 # closed-form truth of the demo study: y = a + b + EFFECT[supplier], limit y <= 12; the middle level
