@@ -9,6 +9,7 @@ from __future__ import annotations
 import json
 
 import numpy as np
+import pandas as pd
 import pytest
 
 from windowfinder.cli import main
@@ -269,3 +270,61 @@ def test_a_proposed_replicate_names_the_run_it_repeats(toy):
     assert list(frame["repeats"]) == [made["run"].iloc[0], ""]
     notes = NextRuns(frame, "", "").planned_rows(st.spec)["note"].tolist()
     assert notes == [f"suggested (tradeoff), replicate of {made['run'].iloc[0]}", "suggested (window)"]
+
+
+# ------------------------------------------------------------------------ API: P at any settings
+def test_study_probability_matches_the_internal_computation_and_least_squares_by_hand(toy):
+    from scipy.stats import t as t_dist
+
+    from windowfinder.answers.results import feasibility_of
+    from windowfinder.errors import InputError
+
+    st = Study.load(toy)
+    fit = st.fit()
+    ask = pd.DataFrame({"resin": ["alpha", "beta", "beta", "alpha"], "a": [3.0, 3.0, 4.0, 9.5],
+                        "b": [4.0, 4.0, 3.5, 9.0]})
+    got = st.probability(ask, fit=fit)
+    assert list(got.columns) == ["resin", "a", "b", "p_y", "p_all_limits", "p_works", "p_joint", "allowed"]
+    assert list(got["resin"]) == list(ask["resin"])
+    # the internal computation on coded inputs
+    U = st.spec.to_coded(st.spec.level_indices(ask)[["resin", "a", "b"]].to_numpy(float))
+    _, joint = feasibility_of(st.spec, fit).probabilities(U)
+    np.testing.assert_allclose(got["p_joint"], joint, rtol=1e-12)
+    # closed form: ordinary least squares on [1, a, b, beta] and the Student-t prediction interval of a
+    # new observation, P(Y <= 12) = T_{n-p}((12 - yhat) / (s sqrt(1 + x (X'X)^-1 x')))
+    # (Montgomery, Peck & Vining 2012, Introduction to Linear Regression Analysis, 5th ed., §3.5)
+    runs = st.runs.done()
+    Z = np.column_stack([np.ones(len(runs)), runs["a"], runs["b"], runs["resin"] == 1.0]).astype(float)
+    beta, *_ = np.linalg.lstsq(Z, runs["y"].to_numpy(float), rcond=None)
+    n, p = Z.shape
+    s2 = np.sum((runs["y"].to_numpy(float) - Z @ beta) ** 2) / (n - p)
+    Xq = np.column_stack([np.ones(4), ask["a"], ask["b"], ask["resin"] == "beta"]).astype(float)
+    sd = np.sqrt(s2 * (1 + np.einsum("ij,jk,ik->i", Xq, np.linalg.inv(Z.T @ Z), Xq)))
+    expect = t_dist.cdf((12.0 - Xq @ beta) / sd, n - p)
+    np.testing.assert_allclose(got["p_y"], expect, rtol=1e-6, atol=1e-9)
+    np.testing.assert_allclose(got["p_all_limits"], got["p_y"])
+    assert (got["p_works"] == 1.0).all() and got["allowed"].all()
+    # the truth says: alpha 3 + 4 = 7 <= 12 comfortably; beta 3 + 4 + 4 = 11 near the limit; 9.5 + 9 no
+    assert got["p_y"][0] > 0.999 and got["p_y"][3] < 1e-3
+    with pytest.raises(InputError, match="no column for factor"):
+        st.probability(ask[["a", "b"]], fit=fit)
+    with pytest.raises(InputError, match="not a level"):
+        st.probability(ask.assign(resin="gamma"), fit=fit)
+
+
+def test_new_template_shows_a_commented_constraint_that_works_when_uncommented(tmp_path):
+    import re
+
+    from windowfinder.inputs.spec import StudySpec
+    from windowfinder.study import create_study
+
+    path = create_study(tmp_path / "t")
+    text = path.read_text()
+    assert "# [[constraint]]" in text and len(StudySpec.from_toml(path).constraints) == 0
+    block = text[text.index("# [[constraint]]"):].split("\n\n")[0]
+    path.write_text(text.replace(block, re.sub(r"^# ?", "", block, flags=re.M)))
+    spec = StudySpec.from_toml(path)
+    assert len(spec.constraints) == 1
+    # by hand: temperature + 0.2 time <= 110 holds at (40, 30): 46, breaks at (90, 180): 126
+    U = spec.to_coded(np.array([[40.0, 30.0], [90.0, 180.0]]))
+    assert list(spec.linear.feasible(U)) == [True, False]

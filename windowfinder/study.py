@@ -51,6 +51,11 @@ step = 5.0
 # name = "solvent"
 # levels = ["toluene", "heptane"]
 
+# [[constraint]]      # settings that must never be run: a linear limit on numeric factors, natural units
+# name = "heat input"
+# terms = {{ temperature = 1.0, time = 0.2 }}   # 1.0 * temperature + 0.2 * time
+# max = 110.0         # min and/or max
+
 [[response]]          # one table per measured result
 name = "yield"
 unit = "%"
@@ -575,6 +580,47 @@ class Study:
         if sur.failure is not None and getattr(sur.failure, "note_", ""):
             warnings.append(f"failure model: {sur.failure.note_}")
         return FitResult(sur, diags, X, warnings)
+
+    def probability(self, settings, fit: FitResult | None = None, mean_only: bool = False) -> pd.DataFrame:
+        """Probability that a new run at each of ``settings`` meets each limit, all of them, and works.
+
+        ``settings``: a DataFrame (or a list of dicts) with one column per factor in natural units, level
+        names for categorical factors. Returns the settings with ``p_<response>`` for each limited
+        response, ``p_all_limits`` (their product: the responses' errors are independent given the
+        settings), ``p_works`` (1 without failed runs), ``p_joint`` = ``p_all_limits * p_works`` (the
+        figure a window must keep above the confidence) and ``allowed`` (inside the bounds and every
+        constraint; outside, the figures are extrapolation). ``mean_only``: for the process mean
+        instead of a new run (no run-to-run noise), as ``window --mean``.
+        """
+        from windowfinder.answers.results import feasibility_of
+
+        spec = self.spec
+        frame = pd.DataFrame(settings).reset_index(drop=True)
+        missing = [f for f in spec.factor_names if f not in frame.columns]
+        if missing:
+            raise InputError(f"probability: no column for factor(s) {', '.join(missing)}; give every factor "
+                             f"({', '.join(spec.factor_names)}) in natural units, level names for categorical ones")
+        if not spec.limited:
+            raise InputError(f"{spec.source}: no response has a min or max; there is no limit to meet")
+        try:
+            X = spec.level_indices(frame)[spec.factor_names].to_numpy(dtype=float)
+        except (TypeError, ValueError):
+            raise InputError("probability: a numeric factor's setting is not a number") from None
+        if not np.isfinite(X).all():
+            raise InputError("probability: every setting must be a finite number (or a level name)")
+        fit = self.fit() if fit is None else fit
+        U = spec.to_coded(X).reshape(-1, spec.d)
+        feas = feasibility_of(spec, fit, mean_only)
+        p_each, p_joint = feas.probabilities(U)
+        out = spec.labelled(frame[spec.factor_names].copy())
+        for k, r in enumerate(spec.limited):
+            out[f"p_{r.name}"] = p_each[:, k]
+        out["p_all_limits"] = np.prod(p_each, axis=1)
+        failure = fit.surrogates.failure
+        out["p_works"] = np.ones(len(U)) if failure is None else np.ravel(failure.predict_proba(U))
+        out["p_joint"] = p_joint
+        out["allowed"] = np.all((U >= -1e-12) & (U <= 1 + 1e-12), axis=1) & spec.linear.feasible(U)
+        return out
 
     def suggest(self, count: int, aim: str = "balanced", fit: FitResult | None = None,
                 confidence: float | None = None, seed: int | None = None) -> NextRuns:
