@@ -328,3 +328,66 @@ def test_new_template_shows_a_commented_constraint_that_works_when_uncommented(t
     # by hand: temperature + 0.2 time <= 110 holds at (40, 30): 46, breaks at (90, 180): 126
     U = spec.to_coded(np.array([[40.0, 30.0], [90.0, 180.0]]))
     assert list(spec.linear.feasible(U)) == [True, False]
+
+
+# ------------------------------------------------------------- messages in the user's own terms
+def test_design_size_messages_count_numeric_factors_per_level_and_in_all(tmp_path, capsys):
+    d = tmp_path / "s"
+    d.mkdir()
+    (d / "study.toml").write_text(STUDY)
+    # a 3^2 full factorial (Montgomery 2013, Design and Analysis of Experiments, 8th ed., §9.2) per level
+    code, _, err = _cli(["design", d, "--method", "full-factorial", "--runs", "8"], capsys)
+    assert code == 2 and len(err.strip().splitlines()) == 1
+    assert "2 numeric factors has 9 runs per level combination of resin, 18 in all" in err
+    code, _, err = _cli(["design", d, "--method", "box-behnken"], capsys)   # needs 3 or more factors
+    assert code == 2 and "numeric factors, the study has 2 (besides the categorical resin)" in err
+    assert not (d / "runs.csv").exists()
+    code, _, _ = _cli(["design", d, "--method", "full-factorial", "--runs", "18"], capsys)
+    assert code == 0 and len(Study.load(d).runs.frame) == 18
+
+
+def _planned_copy(tmp_path, toy):
+    import shutil
+
+    d = tmp_path / "c"
+    shutil.copytree(toy, d)
+    st = Study.load(d)
+    frame = st.design("space-filling", runs=2)
+    st.add_runs(frame)
+    return d, frame
+
+
+def test_level_names_with_wrong_case_or_spaces_are_refused_with_the_fix(tmp_path, toy, capsys):
+    d, planned = _planned_copy(tmp_path, toy)
+    run, level = planned["run"].iloc[0], planned["resin"].iloc[0]
+    other = {"alpha": "beta", "beta": "alpha"}[level]
+    before = (d / "runs.csv").read_bytes()
+    for cell, needle in ((level.capitalize(), f"case-sensitive: write '{level}'"),
+                         (f" {level}", f"space before or after the level name; write '{level}'"),
+                         (other, f"differs from the planned '{level}'")):
+        (d / "r.csv").write_text(f"run,resin,y\n{run},{cell},5.0\n")
+        code, _, err = _cli(["record", d, d / "r.csv"], capsys)
+        assert code == 2 and needle in err and len(err.strip().splitlines()) == 1, err
+        assert (d / "runs.csv").read_bytes() == before                           # nothing written
+    # a runs.csv cell " beta" is refused like a name with a leading space (names policy)
+    text = before.decode().splitlines()
+    row = next(i for i, ln in enumerate(text) if ln.startswith(f"{run},"))
+    text[row] = text[row].replace(f",{level},", f", {level},", 1)
+    (d / "runs.csv").write_text("\n".join(text) + "\n")
+    code, _, err = _cli(["check", d], capsys)
+    assert code == 2 and "space before or after the level name" in err and len(err.strip().splitlines()) == 1
+
+
+def test_fit_shows_a_categorical_length_scale_as_the_correlation_between_levels(tmp_path, capsys):
+    text = STUDY.replace('model = "linear"', 'model = "gp"')
+    d = make_study(tmp_path / "g", text=text, runs=16)
+    code, out, _ = _cli(["fit", d], capsys)
+    assert code == 0
+    st = Study.load(d)
+    model = st.fit().surrogates.models["y"]
+    l_z = model.length_scales_[st.spec.factor_names.index("resin")]
+    # Matern 5/2 at r = 1 / l_z (Rasmussen & Williams 2006, eq. 4.17): (1 + s + s^2 / 3) exp(-s), s = sqrt(5) r
+    s = np.sqrt(5.0) / l_z
+    tau = (1 + s + s * s / 3) * np.exp(-s)
+    row = next(ln for ln in out.splitlines() if ln.startswith("y "))
+    assert f"resin: levels correlate {tau:.2f}" in row and "resin=" not in row

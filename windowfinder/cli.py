@@ -111,6 +111,17 @@ def cmd_fit(args):
     print(f"diagnostics written to {path}")
 
 
+def _level_correlation(res, response: str, length_scale: float) -> float:
+    """Correlation between the two levels of a categorical factor at equal numeric settings: the
+    kernel's Matérn at distance ``1 / l`` (the level column is 0/1; docs/methods.md, categorical factors)."""
+    import numpy as np
+
+    from windowfinder.models.likelihood import matern_and_slope
+
+    nu = getattr(res.surrogates.models[response], "nu", 2.5)
+    return float(matern_and_slope(np.array([1.0 / length_scale]), nu, slope=False)[0][0])
+
+
 def format_diagnostics(res, spec) -> str:
     """Plain-text diagnostics table: one line per response."""
     from windowfinder.models.choice import ModelChoice
@@ -119,9 +130,12 @@ def format_diagnostics(res, spec) -> str:
              "units beside",
              f"{'response':<16} {'model':<9} {'scale':<7} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>9} "
              f"{'natural RMSE':>16} {'cover95':>8}  length scales (factor units)"]
+    cats = {spec.factors[j].name for j in spec.categorical}
     for d in res.diagnostics:
         unit = spec.response(d.response).unit
-        ls = ", ".join(f"{k}={v:.3g}" for k, v in d.length_scales.items()) or "-"
+        ls = ", ".join(f"{k}={v:.3g}" if k not in cats else
+                       f"{k}: levels correlate {_level_correlation(res, d.response, v):.2f}"
+                       for k, v in d.length_scales.items()) or "-"
         lines.append(f"{d.response:<16} {d.model:<9} {d.scale:<7} {d.n:>3} {d.loo_q2:>7.2f} "
                      f"{d.loo_rmse:>9.3g} {d.loo_rmse_natural:>12.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
     for d in res.diagnostics:

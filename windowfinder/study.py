@@ -244,9 +244,8 @@ class Study:
         inner = Study(self.dir, sub, read_runs(self.dir / "__none__.csv", sub))
         d_num = sub.d
         n = 10 * spec.d if runs is None and method in ("space-filling", "sobol") else runs
-        if n is not None and method not in ("space-filling", "sobol") and int(n) % k:
-            raise InputError(f"--runs {n}: {method} is replicated once per level combination ({k}); give a "
-                             f"multiple of {k} or leave --runs unset")
+        if method not in ("space-filling", "sobol"):   # sizes in the user's terms: numeric factors, per level
+            self._check_size_by_level(method, d_num, k, n)
         # the runs that do not split evenly go to the combinations with the fewest runs in the table
         # so far, so that designs added in turn (a campaign's top-ups) stay balanced too
         have = self.runs.X(self.runs.frame)[:, spec.categorical] if len(self.runs) else np.empty((0, 1))
@@ -295,6 +294,23 @@ class Study:
         frame.attrs["notes"] = notes
         return frame
 
+    def _check_size_by_level(self, method: str, d_num: int, k: int, runs) -> None:
+        """A classical design made once per level combination: its size, or why it cannot be made, said
+        in numeric factors, runs per level combination and runs in all (one line)."""
+        cats = ", ".join(self.spec.factors[j].name for j in self.spec.categorical)
+        try:
+            size = designs.design_size(method, d_num)
+        except InputError as err:
+            raise InputError(str(err).replace(" factors, the study has ", " numeric factors, the study has ")
+                             .replace(";", f" (besides the categorical {cats});", 1)) from None
+        if method == "ofat" and runs is not None and int(runs) % k:   # its runs choose the levels per factor
+            raise InputError(f"--runs {runs}: ofat is made once per level combination of {cats} ({k}); give a "
+                             f"multiple of {k} or leave --runs unset")
+        if method != "ofat" and runs is not None and int(runs) != size * k:
+            raise InputError(f"--runs {runs}: {method} on {d_num} numeric factors has {size} runs per level "
+                             f"combination of {cats}, {size * k} in all ({k} combinations); give --runs "
+                             f"{size * k} or leave --runs unset")
+
     def _on_steps(self, X: np.ndarray) -> np.ndarray:
         """Round to each factor's step without clipping to the bounds (circumscribed axial runs)."""
         X = X.copy()
@@ -322,8 +338,9 @@ class Study:
         if method in ("space-filling", "sobol"):
             Pc = spec.to_coded(pool)
             X = pool[designs.maximin_subset(Pc, n)]
-            notes.append(f"{method}: {n} runs chosen by maximin from {len(pool)} allowed settings on the "
-                         "step grid (the constraints rule out a Latin hypercube)")
+            notes.append(f"{method}: {n} runs chosen by maximin from {len(pool)} distinct allowed settings "
+                         f"in a Sobol sample (seed {seed}) rounded to the step grid (the constraints rule out "
+                         "a Latin hypercube)")
             if len(np.unique(X, axis=0)) < n:
                 notes.append(f"only {len(np.unique(X, axis=0))} distinct allowed settings on the step "
                              f"grid; the other runs repeat them")

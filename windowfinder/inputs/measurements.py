@@ -100,10 +100,17 @@ def _merge_row(frame, i, cells, col, spec, where, replace, out) -> None:
     for f in spec.factors:  # factor columns are a check that the right run is meant, never a change
         if f.name in col and cells[col[f.name]].strip() and f.is_categorical:
             given_level, planned_level = cells[col[f.name]].strip(), f.label(frame.at[i, f.name])
+            if given_level != cells[col[f.name]]:   # names never begin or end with a space
+                raise InputError(f"{where}: '{f.name}' = '{cells[col[f.name]]}' has a space before or after "
+                                 f"the level name; write '{given_level}' (level names are matched exactly)")
             if given_level != planned_level:
+                hint = (f" (level names are case-sensitive: write '{planned_level}')"
+                        if given_level.casefold() == planned_level.casefold() else
+                        "" if given_level in f.levels else
+                        f" ('{given_level}' is not a level either; {nearest(given_level, f.levels, 'levels are')})")
                 raise InputError(f"{where}: '{f.name}' = '{given_level}' differs from the planned "
-                                 f"'{planned_level}' in runs.csv; a result is recorded for the settings of "
-                                 "its run (plan a new run for other settings)")
+                                 f"'{planned_level}' in runs.csv{hint}; a result is recorded for the settings "
+                                 "of its run (plan a new run for other settings)")
         elif f.name in col and cells[col[f.name]].strip():
             v = _number(cells[col[f.name]], where, f.name, allow_blank=False)
             planned = float(frame.at[i, f.name])

@@ -230,6 +230,9 @@ def level_value(cell: str, where: str, factor) -> float:
     if s == "":
         raise InputError(f"{where}: '{factor.name}' is empty; every run needs all factor settings (one of "
                          + ", ".join(factor.levels) + ")")
+    if s != cell and s in factor.levels:   # names never begin or end with a space (inputs/names.py)
+        raise InputError(f"{where}: '{factor.name}' = '{cell}' has a space before or after the level name; "
+                         f"write '{s}' (level names are matched exactly)")
     if s not in factor.levels:
         raise InputError(f"{where}: '{factor.name}' = '{s}' is not one of its levels; "
                          + nearest(s, factor.levels, "levels are") + "; fix the cell")
