@@ -244,7 +244,7 @@ def test_classical_design_is_replicated_per_level(tmp_path):
     parts = _slices(st.spec, frame)
     assert len(parts["pure"]) == len(parts["mix"]) == 9   # the 3^2 factorial at each level
     np.testing.assert_array_equal(np.unique(parts["pure"], axis=0), np.unique(parts["mix"], axis=0))
-    with pytest.raises(InputError, match="multiple of 2"):
+    with pytest.raises(InputError, match="9 runs per level combination of gas, 18 in all"):
         st.design("full-factorial", runs=9)
     with pytest.raises(InputError, match="--blocks"):
         st.design("space-filling", runs=12, blocks=2)
