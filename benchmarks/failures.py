@@ -45,7 +45,8 @@ def reactor_cost(runs: int, root: Path) -> dict:
     """Window volume share with the example runs + ``runs`` more, and with one failed run at the far corner."""
     from windowfinder.answers.results import build_window
     from windowfinder.cases.examples import simulate_planned
-    from windowfinder.study import Study, create_study
+    from windowfinder.study import Study
+    from windowfinder.template import create_study
 
     folder = root / f"reactor{runs}"
     create_study(folder, example="reactor")

@@ -350,7 +350,7 @@ def test_testplan_runs_at_the_named_levels_and_verify_reads_them(tmp_path, capsy
 # ------------------------------------------------------------------------ bundled case, suggestions
 @pytest.fixture
 def lasercut(tmp_path):
-    from windowfinder.study import create_study
+    from windowfinder.template import create_study
 
     create_study(tmp_path / "cut", example="lasercut")
     return tmp_path / "cut"

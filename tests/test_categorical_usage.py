@@ -316,7 +316,7 @@ def test_new_template_shows_a_commented_constraint_that_works_when_uncommented(t
     import re
 
     from windowfinder.inputs.spec import StudySpec
-    from windowfinder.study import create_study
+    from windowfinder.template import create_study
 
     path = create_study(tmp_path / "t")
     text = path.read_text()

@@ -46,7 +46,8 @@ def test_the_measure_the_demo_reads_is_the_exported_ranges_share(tmp_path):
     import numpy as np
 
     from windowfinder.answers.results import build_window
-    from windowfinder.study import Study, create_study
+    from windowfinder.study import Study
+    from windowfinder.template import create_study
 
     create_study(tmp_path / "t", example="tempering")
     study = Study.load(tmp_path / "t")

@@ -131,7 +131,8 @@ def test_far_corner_failed_run_costs_at_most_30_percent_of_the_reactor_window(tm
 
     from windowfinder.answers.results import build_window
     from windowfinder.cases.examples import simulate_planned
-    from windowfinder.study import Study, create_study
+    from windowfinder.study import Study
+    from windowfinder.template import create_study
 
     folder = tmp_path / "reactor"
     create_study(folder, example="reactor")

@@ -26,7 +26,8 @@ from windowfinder.answers.support import judge_support, runs_needed, space_filli
 from windowfinder.cli import main
 from windowfinder.inputs.designs import maximin_latin_hypercube, sobol
 from windowfinder.models.gp import GPModel
-from windowfinder.study import Study, create_study
+from windowfinder.study import Study
+from windowfinder.template import create_study
 
 GOOD = {"temperature": 72.0, "time": 121.0, "catalyst": 1.8}  # inside the reactor's true window
 

@@ -48,7 +48,7 @@ def _warn(lines):
 
 # -- verbs -----------------------------------------------------------------------------------------
 def cmd_new(args):
-    from windowfinder.study import create_study
+    from windowfinder.template import create_study
 
     path = create_study(args.study_dir, example=args.example, name=args.name)
     print(f"created {path}")
