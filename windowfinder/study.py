@@ -98,7 +98,7 @@ class Study(Planner):
 
     def record_file(self, path, replace: bool = False):
         """Merge a results file (CSV, or XLSX with openpyxl) into its runs by run id; see :meth:`record_results`."""
-        from windowfinder.inputs.runs import _raw_rows
+        from windowfinder.inputs.cells import _raw_rows
 
         path = Path(path)
         if not path.exists():

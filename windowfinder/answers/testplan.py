@@ -17,7 +17,8 @@ import pandas as pd
 from scipy.stats import qmc
 
 from windowfinder.errors import InputError
-from windowfinder.inputs.runs import _number, _raw_rows, level_value, next_ids
+from windowfinder.inputs.cells import _number, _raw_rows, level_value
+from windowfinder.inputs.runs import next_ids
 from windowfinder.inputs.spec import StudySpec
 
 PLAN_FILE = "testplan.csv"

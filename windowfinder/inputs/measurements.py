@@ -19,7 +19,8 @@ import numpy as np
 import pandas as pd
 
 from windowfinder.errors import InputError, nearest
-from windowfinder.inputs.runs import RunTable, _number, check_transforms, row_cells
+from windowfinder.inputs.cells import _number, row_cells
+from windowfinder.inputs.runs import RunTable, check_transforms
 
 RESULT_STATUSES = ("done", "failed")
 
