@@ -238,7 +238,7 @@ def test_tradeoff_score_ignores_a_setting_that_cannot_reach_the_confidence():
     from scipy.stats import norm
 
     from windowfinder.models.surrogates import Surrogates
-    from windowfinder.nextruns.suggestions import Acquisition
+    from windowfinder.nextruns.acquisition import Acquisition
 
     # g = x minimised (model sd 0.02); limit y >= 0.3 with y = x, model sd 1e-4, noise sd 0.2:
     # a new run meets it with P = Phi((x - 0.3) / 0.2) (scipy.stats.norm), >= 0.95 for x >= 0.629
