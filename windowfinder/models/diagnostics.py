@@ -327,7 +327,18 @@ def diagnose(model, y=None, response_name="response", factor_names=(), factor_sp
         length_scales=scales, noise_sd=noise_sd, block_offsets=offsets, block_sd=block_sd,
         warnings=notes, measured=y.tolist(),
         loo_median=median.tolist(), loo_low=low.tolist(), loo_high=high.tolist(),
-        choice={} if choice is None else choice.to_dict(), terms=terms)
+        choice=_choice_record(choice, terms), terms=terms)
+
+
+def _choice_record(choice, terms):
+    """The choice as a dict, its term list named as the term table names it (``flux[chloride]``, not
+    the polynomial's internal ``x3``), so fit.json speaks one naming."""
+    if choice is None:
+        return {}
+    out = choice.to_dict()
+    if terms and len(terms) == len(out.get("terms", [])):
+        out["terms"] = [t["term"] for t in terms]
+    return out
 
 
 def diagnose_all(surrogates, factor_names=(), factor_spans=()):

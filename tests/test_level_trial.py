@@ -1,0 +1,105 @@
+"""A new user's trial of a study with a three-level categorical factor and a linear constraint: what
+fit.json, the template, record, testplan, the campaign log and the report say about it.
+
+The scenario (torch brazing of copper to steel) is our own demo: temperature 560-620 degC, dwell
+10-120 s, three fluxes, the heat input ``temperature + 0.5 dwell <= 650``. The joint strength is a
+closed-form quadratic of our own (``strength``, below), with a per-flux offset.
+"""
+
+from __future__ import annotations
+
+import json
+import re
+
+import numpy as np
+import pytest
+
+from windowfinder.cli import main
+from windowfinder.study import Study
+
+FLUXES = ("fluoroaluminate", "chloride", "caesium")
+
+STUDY = """\
+[study]
+name = "torch brazing"
+seed = 3
+confidence = 0.9
+
+[[factor]]
+name = "temperature"
+unit = "degC"
+low = 560.0
+high = 620.0
+step = 1
+tolerance = 3
+
+[[factor]]
+name = "dwell"
+unit = "s"
+low = 10.0
+high = 120.0
+step = 1
+tolerance = 4
+
+[[factor]]
+name = "flux"
+levels = ["fluoroaluminate", "chloride", "caesium"]
+
+[[constraint]]
+name = "heat"
+terms = { temperature = 1.0, dwell = 0.5 }
+max = 650.0
+
+[[response]]
+name = "strength"
+unit = "MPa"
+goal = "maximize"
+min = 100.0
+"""
+
+OFFSET = {"fluoroaluminate": 10.0, "chloride": -15.0, "caesium": 5.0}
+
+
+def strength(temperature, dwell, flux):
+    """Demo truth: quadratic in temperature, linear in dwell, an offset per flux (MPa)."""
+    t = (np.asarray(temperature, float) - 560.0) / 60.0
+    w = (np.asarray(dwell, float) - 10.0) / 110.0
+    return 80.0 + 40.0 * t + 30.0 * w - 30.0 * t * t + np.array([OFFSET[f] for f in flux])
+
+
+def make_study(folder, runs=30, noise=2.0, text=STUDY):
+    folder.mkdir(parents=True, exist_ok=True)
+    (folder / "study.toml").write_text(text)
+    st = Study.load(folder)
+    frame = st.design("space-filling", runs=runs)
+    rng = np.random.default_rng(1)
+    frame["strength"] = (strength(frame["temperature"], frame["dwell"], frame["flux"])
+                         + noise * rng.standard_normal(len(frame)))
+    frame["status"] = "done"
+    st.add_runs(frame)
+    return folder
+
+
+@pytest.fixture(scope="module")
+def braze(tmp_path_factory):
+    return make_study(tmp_path_factory.mktemp("braze") / "s")
+
+
+def _cli(argv, capsys):
+    code = main([str(a) for a in argv])
+    out, err = capsys.readouterr()
+    return code, out, err
+
+
+# ------------------------------------------------------------------------------------ fit.json naming
+def test_fit_json_names_the_chosen_terms_as_the_term_table_does(braze, capsys):
+    code, out, _ = _cli(["fit", braze], capsys)
+    assert code == 0
+    doc = json.loads((braze / "out" / "fit.json").read_text())
+    res = doc["responses"][0]
+    table = [t["term"] for t in res["terms"]]
+    assert res["choice"]["terms"] == table        # one naming in the file
+    assert not any(re.fullmatch(r"x\d+.*", t) for t in res["choice"]["terms"])
+    assert any(t.startswith("flux[") for t in table)
+    for term in table:                            # and the printed table uses the same names
+        assert term in out
