@@ -103,3 +103,21 @@ def test_fit_json_names_the_chosen_terms_as_the_term_table_does(braze, capsys):
     assert any(t.startswith("flux[") for t in table)
     for term in table:                            # and the printed table uses the same names
         assert term in out
+
+
+# ------------------------------------------------------------------------------------ the template
+def test_new_template_says_a_categorical_factor_has_two_or_more_levels(tmp_path, capsys):
+    code, _, _ = _cli(["new", tmp_path / "n"], capsys)
+    assert code == 0
+    text = (tmp_path / "n" / "study.toml").read_text()
+    assert "two named levels" not in text
+    assert "two or more named levels" in text
+    # the commented example, uncommented, is a valid three-level factor
+    lines = text.splitlines()
+    i = next(k for k, ln in enumerate(lines) if ln.startswith("# [[factor]]"))
+    block = [re.sub(r"^# ?", "", ln) for ln in lines[i:i + 3]]
+    uncommented = "\n".join(lines[:i] + block + lines[i + 3:])
+    (tmp_path / "n" / "study.toml").write_text(uncommented)
+    from windowfinder.inputs.spec import StudySpec
+    spec = StudySpec.from_toml(tmp_path / "n" / "study.toml")
+    assert len(spec.factors[spec.categorical[0]].levels) == 3

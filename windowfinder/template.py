@@ -35,9 +35,9 @@ low = 30.0
 high = 180.0
 step = 5.0
 
-# [[factor]]          # a choice, not a number: two named levels, no low/high (runs.csv holds the names)
-# name = "solvent"
-# levels = ["toluene", "heptane"]
+# [[factor]]          # a choice, not a number: two or more named levels, no low/high (runs.csv holds
+# name = "solvent"    # the names); level combinations of all such factors at most 16 (docs/guide.md)
+# levels = ["toluene", "heptane", "xylene"]
 
 # [[constraint]]      # settings that must never be run: a linear limit on numeric factors, natural units
 # name = "heat input"
