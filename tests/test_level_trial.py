@@ -121,3 +121,29 @@ def test_new_template_says_a_categorical_factor_has_two_or_more_levels(tmp_path,
     from windowfinder.inputs.spec import StudySpec
     spec = StudySpec.from_toml(tmp_path / "n" / "study.toml")
     assert len(spec.factors[spec.categorical[0]].levels) == 3
+
+
+# ------------------------------------------------------------------------------------ record
+@pytest.fixture()
+def planned(tmp_path):
+    """The trial study with one planned run R031 at caesium."""
+    folder = make_study(tmp_path / "p", runs=12)
+    st = Study.load(folder)
+    frame = st.design("space-filling", runs=3).iloc[[0]].copy()
+    frame["run"], frame["flux"], frame["status"] = "R031", "caesium", "planned"
+    st.add_runs(frame)
+    return folder
+
+
+@pytest.mark.parametrize("cell,expect", [
+    ("cesium", "'cesium' is not a level of flux; did you mean 'caesium'?"),
+    ("caesium ", "space before or after the level name; write 'caesium'"),
+])
+def test_record_names_a_misspelt_level_as_no_level_of_the_factor(planned, tmp_path, capsys, cell, expect):
+    before = (planned / "runs.csv").read_bytes()
+    results = tmp_path / "r.csv"
+    results.write_text(f"run,flux,strength\nR031,{cell},111\n")
+    code, out, err = _cli(["record", planned, results], capsys)
+    assert code == 2
+    assert expect in err and len(err.strip().splitlines()) == 1
+    assert (planned / "runs.csv").read_bytes() == before      # nothing written

@@ -104,11 +104,13 @@ def _merge_row(frame, i, cells, col, spec, where, replace, out) -> None:
             if given_level != cells[col[f.name]]:   # names never begin or end with a space
                 raise InputError(f"{where}: '{f.name}' = '{cells[col[f.name]]}' has a space before or after "
                                  f"the level name; write '{given_level}' (level names are matched exactly)")
+            if given_level not in f.levels and given_level.casefold() != planned_level.casefold():
+                raise InputError(f"{where}: '{f.name}' = '{given_level}' is not a level of {f.name}; "
+                                 f"{nearest(given_level, f.levels, 'levels are')}; the run was planned at "
+                                 f"'{planned_level}'")
             if given_level != planned_level:
                 hint = (f" (level names are case-sensitive: write '{planned_level}')"
-                        if given_level.casefold() == planned_level.casefold() else
-                        "" if given_level in f.levels else
-                        f" ('{given_level}' is not a level either; {nearest(given_level, f.levels, 'levels are')})")
+                        if given_level.casefold() == planned_level.casefold() else "")
                 raise InputError(f"{where}: '{f.name}' = '{given_level}' differs from the planned "
                                  f"'{planned_level}' in runs.csv{hint}; a result is recorded for the settings "
                                  "of its run (plan a new run for other settings)")
