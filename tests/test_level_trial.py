@@ -147,3 +147,21 @@ def test_record_names_a_misspelt_level_as_no_level_of_the_factor(planned, tmp_pa
     assert code == 2
     assert expect in err and len(err.strip().splitlines()) == 1
     assert (planned / "runs.csv").read_bytes() == before      # nothing written
+
+
+# ------------------------------------------------------------------------------------ no window
+def test_no_window_message_gives_the_best_point_on_the_step_grid(tmp_path, capsys):
+    folder = make_study(tmp_path / "nw", text=STUDY.replace("min = 100.0", "min = 128.0"))
+    code, out, _ = _cli(["window", folder], capsys)
+    assert code == 0 and out.startswith("no window:")
+    doc = json.loads((folder / "out" / "window.json").read_text())
+    best = doc["best_point"]
+    st = Study.load(folder)
+    for name in ("temperature", "dwell"):     # settable: each value is its own rounding to the step
+        assert best[name] == float(st.spec.factor(name).round(best[name]))
+        assert f"{name} = {best[name]:g}" in out
+    # the P shown is the one at those settings (Study.probability, the public per-setting figure)
+    p = st.probability([best])
+    assert bool(p["allowed"][0])
+    assert doc["best_probability"] == pytest.approx(float(p["p_joint"][0]), abs=1e-9)
+    assert f"P = {doc['best_probability']:.3f}" in out

@@ -183,7 +183,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                   best_probability=float(res.best_probability) if res.best_probability is not None
                   else None, best_point=_point(spec, res.best_point), set_point=set_point)
     if not res.found:
-        msg = (_not_found(spec, res, common["best_point"])
+        common["best_point"], common["best_probability"], note = _settable_best(spec, feas, res)
+        msg = (_not_found(spec, res, common["best_point"], common["best_probability"], note)
                + _failure_blocks(spec, feas, confidence, res.best_point, seed))
         return ProcessWindow(found=False, min_probability=float(res.best_probability or 0.0), factors=[],
                              predicted=[], cautions=cautions(spec, fit, None, mean_only),
@@ -261,7 +262,23 @@ def search_window(spec: StudySpec, feas: Feasibility, confidence: float, set_poi
                        snap=snap)
 
 
-def _not_found(spec: StudySpec, res, best_point: dict) -> str:
+def _settable_best(spec: StudySpec, feas, res):
+    """The search's most probable point as settings the user can make: rounded to each factor's step
+    (:meth:`Factor.round`) with P recomputed there; kept as the model's point (and said so) when the
+    rounded one breaks a [[constraint]]. Returns ``(point, P, note)``."""
+    if res.best_point is None:
+        return {}, res.best_probability, ""
+    u = np.asarray(res.best_point, float).reshape(1, -1)
+    if not spec.has_steps:
+        return _point(spec, u[0]), res.best_probability, ""
+    r = np.clip(spec.snap_coded(u), 0.0, 1.0)
+    if not spec.linear.feasible(r)[0]:
+        return _point(spec, u[0]), res.best_probability, " (a model point between the steps: the nearest " \
+            "settings on the steps break a [[constraint]])"
+    return _point(spec, r[0]), float(spec.linear.masked(feas.joint)(r)[0]), ""
+
+
+def _not_found(spec: StudySpec, res, best_point: dict, best_p: float, note: str = "") -> str:
     if res.verified_lower is not None and np.all(np.isfinite(res.verified_lower)):
         lo = spec.to_natural(res.verified_lower)[0]
         hi = spec.to_natural(res.verified_upper)[0]
@@ -270,13 +287,14 @@ def _not_found(spec: StudySpec, res, best_point: dict) -> str:
         if narrow:
             return (f"every region reaching P >= {res.confidence:g} is narrower than one step: "
                     f"{'; '.join(narrow)}; refine the step in study.toml or lower --confidence")
-    where = spec.point_text(best_point)
+    where = ", ".join(f"{k} = {v}" if isinstance(v, str) else   # on a step grid: every digit of the step
+                      f"{k} = {v:.12g}" if spec.factor(k).step else f"{k} = {v:.4g}"
+                      for k, v in best_point.items()) + note
     if res.best_probability >= res.confidence:
         return (f"no box (with its tolerance band) reaches P >= {res.confidence:g}: it holds only at and "
-                f"very near {where} (P = {res.best_probability:.3f}); add runs around there or lower "
-                "--confidence")
+                f"very near {where} (P = {best_p:.3f}); add runs around there or lower --confidence")
     return (f"no region (with its tolerance band) reaches P >= {res.confidence:g}; the best found is "
-            f"P = {res.best_probability:.3f} at {where}; add runs there or lower --confidence")
+            f"P = {best_p:.3f} at {where}; add runs there or lower --confidence")
 
 
 def _inward_range(f, lo: float, hi: float):
