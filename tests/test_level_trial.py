@@ -165,3 +165,30 @@ def test_no_window_message_gives_the_best_point_on_the_step_grid(tmp_path, capsy
     assert bool(p["allowed"][0])
     assert doc["best_probability"] == pytest.approx(float(p["p_joint"][0]), abs=1e-9)
     assert f"P = {doc['best_probability']:.3f}" in out
+
+
+# ------------------------------------------------------------------------------------ testplan levels
+def _plan_levels(folder):
+    import pandas as pd
+    return set(pd.read_csv(folder / "out" / "testplan.csv")["flux"])
+
+
+def test_testplan_level_plans_only_at_that_level(braze, capsys):
+    code, out, _ = _cli(["testplan", braze, "--level", "flux=caesium"], capsys)
+    assert code == 0 and "at one level combination" in out
+    assert _plan_levels(braze) == {"caesium"}
+    plan_window = json.loads((braze / "out" / "testplan.window.json").read_text())
+    assert [f["levels"] for f in plan_window["factors"] if f["name"] == "flux"] == [["caesium"]]
+
+
+def test_testplan_follows_the_level_window_fixed_and_refuses_conflicts(braze, capsys):
+    assert _cli(["window", braze, "--level", "flux=fluoroaluminate"], capsys)[0] == 0
+    code, out, err = _cli(["testplan", braze], capsys)
+    assert code == 0 and "planning at flux=fluoroaluminate" in err
+    assert _plan_levels(braze) == {"fluoroaluminate"}
+    before = (braze / "out" / "testplan.csv").read_bytes()
+    code, _, err = _cli(["testplan", braze, "--level", "flux=caesium", "flux=chloride"], capsys)
+    assert code == 2 and "disagree" in err and len(err.strip().splitlines()) == 1
+    code, _, err = _cli(["testplan", braze, "--level", "flux=cesium"], capsys)
+    assert code == 2 and "did you mean 'caesium'?" in err
+    assert (braze / "out" / "testplan.csv").read_bytes() == before     # nothing written

@@ -87,6 +87,8 @@ def build_parser() -> argparse.ArgumentParser:
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s = verb("testplan", cmd_testplan, "plan verification runs inside the window")
     s.add_argument("--runs", type=int, help="number of runs (default: centre x3 + corners)")
+    s.add_argument("--level", nargs="+", metavar="FACTOR=LEVEL",
+                   help="plan at this level (default: the level window --level fixed in out/window.json)")
     s.add_argument("--confidence", type=float, help="default: the study's confidence")
     s = verb("verify", cmd_verify, "judge a filled-in test plan and append its runs to runs.csv")
     s.add_argument("file", metavar="FILE", help="the filled-in testplan.csv")

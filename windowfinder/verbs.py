@@ -234,6 +234,18 @@ def cmd_report(args):
     print(f"report: {path}")
 
 
+def _window_levels(study):
+    """The levels out/window.json was fixed at (``window --level``), said on stderr; None if none."""
+    try:
+        fixed = json.loads((study.out / "window.json").read_text()).get("fixed_levels") or None
+        _levels([f"{k}={v}" for k, v in fixed.items()], study.spec)   # still levels of this study
+    except (OSError, ValueError, AttributeError, InputError):
+        return None
+    print("planning at " + ", ".join(f"{k}={v}" for k, v in fixed.items()) + " as out/window.json "
+          "(window --level); give --level to plan elsewhere", file=sys.stderr)
+    return fixed
+
+
 def cmd_testplan(args):
     from windowfinder.answers.results import build_window
     from windowfinder.export.files import window_document, write_csv, write_json
@@ -242,8 +254,9 @@ def cmd_testplan(args):
     from windowfinder.answers.testplan import build_testplan
 
     study = _load(args)
+    levels = _levels(args.level, study.spec) or _window_levels(study)
     fit = study.fit()
-    win = build_window(study.spec, fit, args.confidence)
+    win = build_window(study.spec, fit, args.confidence, levels=levels)
     if not win.supported:   # nothing to verify, and that is an answer, not bad input
         print(f"no test plan: {win.message}")
         _print_cautions(win.cautions[:1], study.spec.has_safety)

@@ -81,8 +81,9 @@ def build_testplan(spec: StudySpec, fit, window, existing_ids, runs: int | None 
         frame[r.name] = np.nan
         frame[f"{r.name}_pred"], frame[f"{r.name}_lo95"], frame[f"{r.name}_hi95"] = med, plo, phi
     frame = spec.labelled(frame)
-    per = f" at each of {len(X) // max(1, centre + n_corner + max(extra, 0))} level combinations" \
-        if spec.categorical else ""
+    n_combo = len(X) // max(1, centre + n_corner + max(extra, 0))
+    per = "" if not spec.categorical else (
+        f" at each of {n_combo} level combinations" if n_combo > 1 else " at one level combination")
     msg = (f"{len(frame)} verification runs inside the window ({centre} at the centre, "
            f"{n_corner} corners{f', {extra} inside' if extra > 0 else ''}{per}), in randomised order")
     return TestPlan(frame, msg)
