@@ -192,3 +192,29 @@ def test_testplan_follows_the_level_window_fixed_and_refuses_conflicts(braze, ca
     code, _, err = _cli(["testplan", braze, "--level", "flux=cesium"], capsys)
     assert code == 2 and "did you mean 'caesium'?" in err
     assert (braze / "out" / "testplan.csv").read_bytes() == before     # nothing written
+
+
+# ------------------------------------------------------------------------------------ failed --function runs
+def _spatter(settings):
+    from windowfinder.cases import RunFailed
+    raise RunFailed("spatter, no joint")
+
+
+def test_guide_says_how_a_function_simulator_reports_a_failed_run_and_it_works_so():
+    from pathlib import Path
+    from windowfinder.campaign.evaluators import FunctionEvaluator
+
+    guide = (Path(__file__).resolve().parents[1] / "docs" / "guide.md").read_text()
+    section = guide[guide.index("### run"):]
+    section = section[:section.index("\n### ", 1)]
+    assert "RunFailed" in section and "reports a failed run" in section
+    responses = ["strength"]
+    # each way the guide names, checked on the evaluator the campaign uses
+    out = FunctionEvaluator(_spatter, responses)("R1", {"temperature": 580.0})
+    assert out.status == "failed" and "spatter, no joint" in out.note
+    for ret in ({"strength": None}, {"strength": float("nan")}, {"strength": " "}, [1.0],
+                {"strengh": 110.0}, {"strength": "strong"}, {"strength": float("inf")}):
+        out = FunctionEvaluator(lambda s, r=ret: r, responses)("R2", {})
+        assert out.status == "failed", ret
+    out = FunctionEvaluator(lambda s: {"strength": 110.0}, ["strength", "porosity"])("R3", {})
+    assert out.status == "done" and "not measured: porosity" in out.note
