@@ -218,3 +218,25 @@ def test_guide_says_how_a_function_simulator_reports_a_failed_run_and_it_works_s
         assert out.status == "failed", ret
     out = FunctionEvaluator(lambda s: {"strength": 110.0}, ["strength", "porosity"])("R3", {})
     assert out.status == "done" and "not measured: porosity" in out.note
+
+
+# ------------------------------------------------------------------------------------ fit: level correlations
+def _matern52(r):
+    """Matern 5/2 correlation (Rasmussen & Williams 2006, GPML, eq. 4.17)."""
+    return (1.0 + np.sqrt(5.0) * r + 5.0 * r ** 2 / 3.0) * np.exp(-np.sqrt(5.0) * r)
+
+
+def test_fit_shows_the_correlation_of_each_pair_of_three_levels(tmp_path, capsys):
+    folder = make_study(tmp_path / "gp", runs=24,
+                        text=STUDY.replace("min = 100.0", 'min = 100.0\nmodel = "gp"'))
+    code, out, _ = _cli(["fit", folder], capsys)
+    assert code == 0
+    assert "flux[" not in out.splitlines()[2]          # no per-level length scales under factor units
+    ls = json.loads((folder / "out" / "fit.json").read_text())["responses"][0]["length_scales"]
+    pairs = [("fluoroaluminate", "chloride"), ("fluoroaluminate", "caesium"), ("chloride", "caesium")]
+    for a, b in pairs:   # one-hot columns: tau_ab = m(sqrt(1/l_a^2 + 1/l_b^2)) (Qian, Wu & Wu 2008, §2)
+        r = np.sqrt(1.0 / ls[f"flux[{a}]"] ** 2 + 1.0 / ls[f"flux[{b}]"] ** 2)
+        assert f"{a}~{b} {_matern52(r):.2f}" in out
+    # Gamma(3, 6) length-scale prior (docs/methods.md): mode (3 - 1) / 6 = 1/3
+    at_mode = all(abs(ls[f"flux[{v}]"] - 1 / 3) <= 0.02 / 3 for v in FLUXES)
+    assert ("the runs did not decide" in out) == at_mode

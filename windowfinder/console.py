@@ -15,15 +15,41 @@ def _warn(lines):
         print(f"warning: {w}", file=sys.stderr)
 
 
-def _level_correlation(res, response: str, length_scale: float) -> float:
-    """Correlation between the two levels of a categorical factor at equal numeric settings: the
-    kernel's Matérn at distance ``1 / l`` (the level column is 0/1; docs/methods.md, categorical factors)."""
+def _level_text(res, d, f) -> str:
+    """How strongly the levels of categorical factor ``f`` correlate at equal numeric settings.
+
+    Two levels (one 0/1 column, length scale l): the kernel's Matern at distance ``1 / l``; more levels
+    (one-hot columns, one length scale per level): for levels a, b the Matern at
+    ``sqrt(1/l_a^2 + 1/l_b^2)`` (the restricted level correlations of Qian, Wu & Wu 2008, Technometrics
+    50(3), section 2; docs/methods.md, categorical factors). Noted when every level's length scale sits
+    at the length-scale prior's mode: then the prior, not the runs, set the figure.
+    """
+    import itertools
+
     import numpy as np
 
+    from windowfinder.models.gp import LENGTH_PRIOR, LENGTH_PRIOR_MAX_RUNS
     from windowfinder.models.likelihood import matern_and_slope
 
-    nu = getattr(res.surrogates.models[response], "nu", 2.5)
-    return float(matern_and_slope(np.array([1.0 / length_scale]), nu, slope=False)[0][0])
+    nu = getattr(res.surrogates.models[d.response], "nu", 2.5)
+
+    def corr(r):
+        return float(matern_and_slope(np.array([r]), nu, slope=False)[0][0])
+
+    if len(f.levels) == 2:
+        scales = [d.length_scales[f.name]]
+        text = f"{f.name}: levels correlate {corr(1.0 / scales[0]):.2f}"
+    else:
+        ls = {v: d.length_scales[f"{f.name}[{v}]"] for v in f.levels}
+        scales = list(ls.values())
+        text = f"{f.name}: levels correlate " + ", ".join(
+            f"{a}~{b} {corr(float(np.hypot(1.0 / ls[a], 1.0 / ls[b]))):.2f}"
+            for a, b in itertools.combinations(f.levels, 2))
+    mode = (LENGTH_PRIOR[0] - 1.0) / LENGTH_PRIOR[1]      # Gamma(a, b): mode (a - 1) / b
+    if d.n <= LENGTH_PRIOR_MAX_RUNS and all(abs(v - mode) <= 0.02 * mode for v in scales):
+        text += f" (length scale{'s' if len(scales) > 1 else ''} at the prior's mode {mode:.3g}: the runs " \
+                "did not decide)"
+    return text
 
 
 def format_diagnostics(res, spec) -> str:
@@ -34,12 +60,13 @@ def format_diagnostics(res, spec) -> str:
              "units beside",
              f"{'response':<16} {'model':<9} {'scale':<7} {'n':>3} {'LOO Q2':>7} {'LOO RMSE':>9} "
              f"{'natural RMSE':>16} {'cover95':>8}  length scales (factor units)"]
-    cats = {spec.factors[j].name for j in spec.categorical}
+    cats = {spec.factors[j].name: spec.factors[j] for j in spec.categorical}
     for d in res.diagnostics:
         unit = spec.response(d.response).unit
-        ls = ", ".join(f"{k}={v:.3g}" if k not in cats else
-                       f"{k}: levels correlate {_level_correlation(res, d.response, v):.2f}"
-                       for k, v in d.length_scales.items()) or "-"
+        owner = {k: k.partition("[")[0] for k in d.length_scales}   # flux[chloride] -> flux
+        ls = ", ".join([f"{k}={v:.3g}" for k, v in d.length_scales.items() if owner[k] not in cats]
+                       + [_level_text(res, d, f) for name, f in cats.items()
+                          if name in owner.values()]) or "-"
         lines.append(f"{d.response:<16} {d.model:<9} {d.scale:<7} {d.n:>3} {d.loo_q2:>7.2f} "
                      f"{d.loo_rmse:>9.3g} {d.loo_rmse_natural:>12.3g} {unit:<3} {d.coverage95:>8.0%}  {ls}")
     for d in res.diagnostics:
