@@ -240,3 +240,30 @@ def test_fit_shows_the_correlation_of_each_pair_of_three_levels(tmp_path, capsys
     # Gamma(3, 6) length-scale prior (docs/methods.md): mode (3 - 1) / 6 = 1/3
     at_mode = all(abs(ls[f"flux[{v}]"] - 1 / 3) <= 0.02 / 3 for v in FLUXES)
     assert ("the runs did not decide" in out) == at_mode
+
+
+# ------------------------------------------------------------------------------------ campaign progress
+def simulate(settings: dict) -> dict:
+    """--function simulator of the demo truth, no noise (importable: the process pool calls it)."""
+    return {"strength": float(strength([settings["temperature"]], [settings["dwell"]],
+                                       [settings["flux"]])[0])}
+
+
+def test_campaign_progress_says_what_a_missing_or_zero_volume_means_and_the_start_design(tmp_path):
+    from campaign_helpers import random_proposer
+    from windowfinder.campaign.loop import default_initial, run_campaign
+
+    folder = make_study(tmp_path / "c", runs=4)
+    lines = []
+    figures = iter([None, 0.0, 0.0])     # no figure yet, then searched and none found
+    run_campaign(folder, function="test_level_trial:simulate", budget=7, batch=1, workers=1,
+                 propose=random_proposer, progress=lines.append,
+                 metrics={"window volume": lambda st: next(figures), "front hypervolume": lambda st: None})
+    text = "\n".join(lines)
+    assert "n/a" not in text
+    # default initial: 10 per factor (30) capped at half the budget, at least d + 2 = 5
+    assert default_initial(3, 7) == 5
+    assert text.count("start design: 1 space-filling run(s) first, to 5 completed runs") == 1
+    assert "window volume not searched yet" in lines[[i for i, ln in enumerate(lines) if "runs done (" in ln][0]]
+    assert "window volume 0 % (searched: no window reaches the confidence yet)" in text
+    assert "front hypervolume none yet" in text

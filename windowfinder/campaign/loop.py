@@ -41,7 +41,11 @@ from windowfinder.study import Study
 
 AIMS = ("window", "tradeoff", "balanced")
 # progress figures that are a share of the factor space: shown in percent, as every window volume is
-VOLUME_METRICS = {"window volume": lambda v: volume_text(v).replace(" of the studied factor space", "")}
+VOLUME_METRICS = {"window volume": lambda v: volume_text(v).replace(" of the studied factor space", "") + (
+    " (searched: no window reaches the confidence yet)" if v == 0 else "")}
+# what a progress figure without a value means, in words (was "n/a" for all of them)
+MISSING_TEXT = {"window volume": "not searched yet (no model fit before the start design is done)",
+                "front hypervolume": "none yet (fewer than 2 runs with every goal measured)"}
 
 
 def suggest_runs(study: Study, count: int, aim: str) -> pd.DataFrame:
@@ -134,7 +138,7 @@ class Campaign:
         From :func:`make_engine`; default a local pool of ``os.cpu_count()`` workers.
     metrics : mapping of str to callable, optional
         ``name -> fn(study) -> float | None`` shown after each batch (e.g. ``"window volume"``,
-        ``"front hypervolume"``) and kept in the history. A metric that raises is shown as n/a; one that
+        ``"front hypervolume"``) and kept in the history. A metric that raises is shown as not available; one that
         returns ``(value, note)`` also has its note printed on a line of its own.
     progress : callable or None
         Receives one line of text per event; default prints to stderr.
@@ -171,6 +175,12 @@ class Campaign:
         study = Study.load(study_dir)
         initial = default_initial(study.spec.d, self.budget) if self.initial is None else self.initial
         check_count("--initial", initial, 0)
+        need = min(initial, self.budget) - len(study.runs.completed())
+        if self.initial is None and need > 0 and not len(study.runs.planned()):
+            d = study.spec.d
+            self._say(f"start design: {need} space-filling run(s) first, to {initial} completed runs "
+                      f"(default --initial: 10 per factor = {10 * d}, at most half the budget "
+                      f"{self.budget // 2}, at least {d + 2}); give --initial to change it")
         ledger = RunLedger(study)
         res = CampaignResult(budget=self.budget)
         engine = self.engine if self.engine is not None else make_engine(self.evaluator)
@@ -263,7 +273,8 @@ class Campaign:
                 value = None
             entry[name] = value
             shown = VOLUME_METRICS.get(name, lambda v: f"{v:.4g}")
-            parts.append(f"{name} " + ("n/a" if value is None else shown(value)))
+            missing = MISSING_TEXT.get(name, "not available")
+            parts.append(f"{name} " + (missing if value is None else shown(value)))
         self._say(", ".join(parts))
         for note in notes:
             self._say(note)
