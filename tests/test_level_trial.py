@@ -267,3 +267,44 @@ def test_campaign_progress_says_what_a_missing_or_zero_volume_means_and_the_star
     assert "window volume not searched yet" in lines[[i for i, ln in enumerate(lines) if "runs done (" in ln][0]]
     assert "window volume 0 % (searched: no window reaches the confidence yet)" in text
     assert "front hypervolume none yet" in text
+
+
+# ------------------------------------------------------------------------------------ report maps
+def _gid(ax, gid):
+    return [a for a in ax.get_children() if a.get_gid() == gid]
+
+
+def test_maps_draw_the_constraint_and_shade_its_forbidden_side(braze):
+    from windowfinder.report.maps import margin_map_figure, probability_map_figure, slice_centre
+
+    st = Study.load(braze)
+    fit = st.fit()
+    from windowfinder.answers.results import build_window
+    win = build_window(st.spec, fit)
+    centre = slice_centre(st.spec, win)
+    for draw in (probability_map_figure, margin_map_figure):
+        fig = draw(st.spec, fit, win, pair=(0, 1))
+        ax = fig.axes[0]
+        (line,) = _gid(ax, "constraint")
+        xy = np.vstack([p.vertices for p in line.get_paths()])
+        # closed form of the boundary: temperature + 0.5 dwell = 650 (study.toml)
+        np.testing.assert_allclose(xy[:, 0] + 0.5 * xy[:, 1], 650.0, atol=1e-6)
+        assert xy[:, 1].min() == pytest.approx(60.0, abs=1.0)    # enters the map at T = 620, dwell 60
+        (shade,) = _gid(ax, "forbidden")
+        inside = np.vstack([p.vertices for p in shade.get_paths()])
+        assert (inside[:, 0] + 0.5 * inside[:, 1] >= 650.0 - 0.6).all()   # only the forbidden side
+        labels = [h.get_label() for h in ax.legend_handles_]
+        assert any("[[constraint]] heat" in t for t in labels)
+        assert "slice point" not in labels          # every numeric factor on the axes, flux fixed
+    assert centre.shape == (3,)
+
+
+def test_report_caption_lists_only_the_factors_off_the_axes(braze, capsys):
+    code, _, _ = _cli(["report", braze], capsys)
+    assert code == 0
+    html = (braze / "out" / "report.html").read_text()
+    assert "held at the window centre (temperature" not in html
+    assert "held at the middle of their ranges (temperature" not in html
+    for level in FLUXES:    # per-level maps: the level is what is held
+        assert f"Held: flux = {level}." in html
+    assert "temperature + 0.5 dwell &lt;= 650" in html or "temperature + 0.5 dwell <= 650" in html

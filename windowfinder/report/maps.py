@@ -6,7 +6,8 @@ without limits gets maps of its goals' predicted medians instead.
 
 With more than two factors each map is a 2-D slice through one point (by default the window centre);
 the other factors are held there. Axes are in natural units; the window box, its guard band and the
-set point are drawn at the coordinates the window spec exports (``window.json``); when a window of
+set point are drawn at the coordinates the window spec exports (``window.json``), the settings a
+``[[constraint]]`` forbids are shaded (at the slice values of the other factors); when a window of
 record exists (``out/record.json``, the last verified window) it is drawn beside the refit window in
 its own colour and line; runs are projected onto the slice.
 """
@@ -182,8 +183,8 @@ def _setting(frame, spec, i, j):
 
 def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=None, centre=None,
                   record=None):
-    """Window box, guard band, window of record, set point, slice point and runs on a map in natural
-    units.
+    """Constraints, window box, guard band, window of record, set point, slice point and runs on a map
+    in natural units.
 
     The window rectangle has ``gid="window"`` and the guard band ``gid="guard band"``; ``record`` (an
     entry of ``out/record.json``) adds the verified window as ``gid="window of record"`` and the
@@ -191,7 +192,7 @@ def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=Non
     ``"suggested runs"``.
     """
     i, j = pair
-    handles = []
+    handles = _draw_constraints(ax, spec, pair, np.full(spec.d, 0.5) if centre is None else centre)
     verified = _record_ranges(spec, record, pair)
     if window is not None and window.found:
         fi, fj = window.factors[i], window.factors[j]
@@ -217,7 +218,7 @@ def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=Non
         ax.plot(sp[spec.factor_names[i]], sp[spec.factor_names[j]], marker="P", ms=12, color=ORANGE,
                 mec=BLACK, ls="none", zorder=7, gid="set point")
         handles.append(Line2D([], [], marker="P", color=ORANGE, mec=BLACK, ls="none", label="set point"))
-    elif centre is not None and spec.d > 2:
+    elif centre is not None and len(spec.numeric) > 2:   # a point only when a numeric factor is off the axes
         c = spec.to_natural(centre)[0]
         ax.plot(c[i], c[j], marker="+", ms=10, color=BLACK, ls="none", zorder=6, path_effects=_HALO)
         handles.append(Line2D([], [], marker="+", color=BLACK, ls="none", label="slice point"))
@@ -241,6 +242,34 @@ def draw_overlays(ax, spec, window=None, pair=(0, 1), runs=None, suggestions=Non
     ax.set_xlabel(label(fx.name, fx.unit))
     ax.set_ylabel(label(fy.name, fy.unit))
     return handles
+
+
+def _draw_constraints(ax, spec, pair, centre, m: int = 2 * GRID + 1) -> list:
+    """The settings a ``[[constraint]]`` forbids on this slice, shaded grey and hatched (``gid =
+    "forbidden"``), and its boundary ``slack = 0`` as a line (``gid = "constraint"``): only the
+    constraints naming an axis factor, with the other factors at the slice values ``centre``."""
+    lin = spec.linear
+    i, j = pair
+    rows = np.flatnonzero((lin.A[:, i] != 0) | (lin.A[:, j] != 0)) if lin else np.empty(0, int)
+    if not rows.size:
+        return []
+    g = np.linspace(0.0, 1.0, m)
+    gx, gy = np.meshgrid(g, g)
+    U = np.repeat(np.asarray(centre, float)[None], m * m, axis=0)
+    U[:, i], U[:, j] = gx.ravel(), gy.ravel()
+    S = lin.margin(U)[:, rows].min(axis=1).reshape(m, m)   # slack of the tightest row, coded
+    if not (S < 0).any():
+        return []
+    xs, ys = spec.factors[i].to_natural(g), spec.factors[j].to_natural(g)
+    shade = ax.contourf(xs, ys, (S < 0).astype(float), levels=[0.5, 1.5], colors=[(0.45, 0.45, 0.45, 0.5)],
+                        hatches=["\\\\"], zorder=4)
+    shade.set_gid("forbidden")
+    if S.min() < 0 < S.max():
+        line = ax.contour(xs, ys, S, levels=[0.0], colors=BLACK, linewidths=1.6, zorder=4)
+        line.set_gid("constraint")
+    names = ", ".join(dict.fromkeys(lin.row_names[k] for k in rows))
+    return [Patch(facecolor=(0.45, 0.45, 0.45, 0.5), edgecolor=BLACK, hatch="\\\\",
+                  label=f"not allowed ([[constraint]] {names})")]
 
 
 def _record_ranges(spec, record, pair):

@@ -224,7 +224,6 @@ def maps(c: Content) -> str:
         from windowfinder.answers.results import feasibility_of
         feas = feasibility_of(spec, c.fit, bool(getattr(win, "mean_only", False)))
     conf = win.confidence if win is not None else spec.confidence
-    held = spec.to_natural(centre)[0]
     pairs = [p for p in map_pairs(spec, c.influence) if not set(p) & set(spec.categorical)]
     if spec.categorical and len(spec.numeric) < 2:
         return para("Maps need two numeric factors; this study has one besides its categorical factors. "
@@ -240,14 +239,17 @@ def maps(c: Content) -> str:
                 + ("; blue dash-dot box: the window of record (the last verified window), beside the "
                    "refit on all runs" if c.record is not None else "") + ". "
                 "Circles: done runs; crosses: failed runs; diamonds: suggested runs.")]
-    if spec.d > 2:
-        out.append(para("With more than two factors each map is a slice: the factors not on the axes are "
-                        "held at the " + ("window centre" if win is not None and win.found else
-                                          "most probable point found" if win is not None and win.best_point
-                                          else "middle of their ranges") + " (" + ", ".join(
-                            f"{f.name} = {v:.4g} {f.unit}".rstrip() for f, v in zip(spec.factors, held)
-                            if not f.is_categorical)
-                        + "), and runs are projected onto the slice."))
+    if len(spec.numeric) > 2:   # only then is a numeric factor off a map's axes
+        out.append(para("With more than two numeric factors each map is a slice: the numeric factors not "
+                        "on its axes are held at the " + ("window centre" if win is not None and win.found
+                                                          else "most probable point found" if win is not None
+                                                          and win.best_point else "middle of their ranges")
+                        + " (named under each map; the cross marks the slice point), and runs are "
+                        "projected onto the slice."))
+    if spec.linear:
+        out.append(para("Grey hatched: settings a [[constraint]] forbids ("
+                        + "; ".join(con.text() for con in spec.linear.constraints)
+                        + "), with the factors off the axes at the slice values."))
     if spec.categorical:
         out.append(para("Categorical factors are never an axis: every pair is mapped at each level (level "
                         "combination) in turn, with the runs made at that level; the window box is drawn "
@@ -302,8 +304,12 @@ def _map_html(c: Content, pair, centre, runs, suggestions, win, conf, feas, comb
     level = ", ".join(f"{spec.factors[k].name} = {spec.factors[k].levels[v]}"
                       for k, v in zip(spec.categorical, combo))
     alt += f" At {level}." if level else ""
+    held = spec.to_natural(centre)[0]   # only the factors off the axes: the numeric ones, then the level
+    off = [f"{f.name} = {v:.4g} {f.unit}".rstrip() for k, (f, v) in enumerate(zip(spec.factors, held))
+           if k not in pair and not f.is_categorical] + ([level] if level else [])
+    caption = "Held: " + ", ".join(off) + "." if off else ""
     return (f"<h3>{esc(fx.name)} × {esc(fy.name)}{(' at ' + esc(level)) if level else ''}</h3>"
-            + image(figure_png(fig), alt))
+            + image(figure_png(fig), alt, caption))
 
 
 # ------------------------------------------------------------------------------------------ trade-off
