@@ -55,13 +55,16 @@ def truth(a, b, resin):
     return np.asarray(a, float) + np.asarray(b, float) + EFFECT * (np.asarray(resin) == "beta")
 
 
-def make_study(folder, text=STUDY, runs=24, noise=0.05):
+def make_study(folder, text=STUDY, runs=24, noise=0.05, response="y", respond=None):
+    """A study folder with ``runs`` space-filling runs of ``respond(frame)`` (default :func:`truth`)
+    plus seeded normal noise of sd ``noise`` in column ``response``."""
     folder.mkdir(parents=True, exist_ok=True)
     (folder / "study.toml").write_text(text)
     st = Study.load(folder)
     frame = st.design("space-filling", runs=runs)
     rng = np.random.default_rng(2)
-    frame["y"] = truth(frame["a"], frame["b"], frame["resin"]) + noise * rng.standard_normal(len(frame))
+    value = truth(frame["a"], frame["b"], frame["resin"]) if respond is None else respond(frame)
+    frame[response] = value + noise * rng.standard_normal(len(frame))
     frame["status"] = "done"
     st.add_runs(frame)
     return folder

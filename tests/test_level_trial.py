@@ -14,8 +14,9 @@ import re
 import numpy as np
 import pytest
 
-from windowfinder.cli import main
 from windowfinder.study import Study
+
+import test_categorical_usage as categorical_usage
 
 FLUXES = ("fluoroaluminate", "chloride", "caesium")
 
@@ -68,16 +69,9 @@ def strength(temperature, dwell, flux):
 
 
 def make_study(folder, runs=30, noise=2.0, text=STUDY):
-    folder.mkdir(parents=True, exist_ok=True)
-    (folder / "study.toml").write_text(text)
-    st = Study.load(folder)
-    frame = st.design("space-filling", runs=runs)
-    rng = np.random.default_rng(1)
-    frame["strength"] = (strength(frame["temperature"], frame["dwell"], frame["flux"])
-                         + noise * rng.standard_normal(len(frame)))
-    frame["status"] = "done"
-    st.add_runs(frame)
-    return folder
+    """The trial study with ``runs`` space-filling runs of the demo truth plus noise of sd ``noise``."""
+    return categorical_usage.make_study(folder, text, runs, noise, "strength", lambda f: strength(
+        f["temperature"], f["dwell"], f["flux"]))
 
 
 @pytest.fixture(scope="module")
@@ -85,10 +79,7 @@ def braze(tmp_path_factory):
     return make_study(tmp_path_factory.mktemp("braze") / "s")
 
 
-def _cli(argv, capsys):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
+_cli = categorical_usage._cli   # (code, stdout, stderr) of one command line
 
 
 # ------------------------------------------------------------------------------------ fit.json naming
@@ -151,7 +142,7 @@ def test_record_names_a_misspelt_level_as_no_level_of_the_factor(planned, tmp_pa
 
 # ------------------------------------------------------------------------------------ no window
 def test_no_window_message_gives_the_best_point_on_the_step_grid(tmp_path, capsys):
-    folder = make_study(tmp_path / "nw", text=STUDY.replace("min = 100.0", "min = 128.0"))
+    folder = make_study(tmp_path / "nw", text=STUDY.replace("min = 100.0", "min = 131.0"))
     code, out, _ = _cli(["window", folder], capsys)
     assert code == 0 and out.startswith("no window:")
     doc = json.loads((folder / "out" / "window.json").read_text())
