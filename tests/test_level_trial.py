@@ -299,3 +299,15 @@ def test_report_caption_lists_only_the_factors_off_the_axes(braze, capsys):
     for level in FLUXES:    # per-level maps: the level is what is held
         assert f"Held: flux = {level}." in html
     assert "temperature + 0.5 dwell &lt;= 650" in html or "temperature + 0.5 dwell <= 650" in html
+
+
+def test_margin_map_colours_are_the_ones_the_report_names(braze):
+    # the report says: inside the limit orange, beyond it purple (sections.maps, margin_map_figure)
+    from windowfinder.report.maps import margin_map_figure
+
+    st = Study.load(braze)
+    fig = margin_map_figure(st.spec, st.fit(), None, pair=(0, 1))
+    cf = next(c for c in fig.axes[0].collections if c.get_array() is not None and c.cmap is not None)
+    met, broken = cf.cmap(cf.norm(3.5)), cf.cmap(cf.norm(-3.5))
+    assert met[0] > met[2]          # orange: more red than blue
+    assert broken[2] > broken[1]    # purple: more blue than green

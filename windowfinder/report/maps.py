@@ -137,7 +137,7 @@ def margin_map_figure(spec, fit, window=None, pair=(0, 1), response=None, runs=N
     fig, ax = _axes(ax)
     Z = np.clip(grid.margins[r.name], -MARGIN_CLIP, MARGIN_CLIP)
     levels = np.linspace(-MARGIN_CLIP, MARGIN_CLIP, 17)
-    cf = ax.contourf(grid.xs, grid.ys, Z, levels=levels, cmap="PuOr")
+    cf = ax.contourf(grid.xs, grid.ys, Z, levels=levels, cmap="PuOr_r")
     fig.colorbar(cf, ax=ax, label="margin / predictive sd", ticks=np.arange(-4, 5, 2))
     handles = []
     for z, style, gid, text in ((0.0, "-", "margin 0", "median on the limit (0 sd)"),
