@@ -54,8 +54,9 @@ QUICK = {"cases": (("spotweld", "space-filling", 30), ("coating", "space-filling
          "seeds": (1,), "n_domain": 512}
 HELD_OUT = ("hardening",)
 # GP hyperparameters: the default (their posterior mode) and the mixture over their posterior
-# (windowfinder.models.marginal), each on every case and seed
-VARIANTS = ("map", "marginal")
+# (windowfinder.models.marginal), each on every case and seed; and "auto": each response's model chosen by
+# leave-one-out as a study's default model = "auto" does (GP, warped GP, polynomials; the GP at its mode)
+VARIANTS = ("map", "marginal", "auto")
 INITIAL, BATCH = 12, 6   # the sequential design: initial Latin hypercube, runs per suggest call
 DEFAULT_HYPERPARAMETERS = gp.HYPERPARAMETERS
 RECALL_TARGET = {3: 0.5, 4: 0.3}
@@ -81,7 +82,7 @@ def _bin_sums(claim, true) -> np.ndarray:
                       np.bincount(k, true, nb)[:nb]])
 
 
-def sequential_design(problem, seed: int, runs: int):
+def sequential_design(problem, seed: int, runs: int, kind: str = "gp"):
     """``INITIAL`` space-filling runs, then batches of ``BATCH`` from :func:`windowfinder.nextruns.suggest`
     (aim window, windowfinder's defaults) until ``runs``: coded settings, responses, works flags."""
     seeds = st.run_seeds(seed, "sequential", runs)
@@ -89,7 +90,7 @@ def sequential_design(problem, seed: int, runs: int):
     Y, works = problem.run(X, seeds[:INITIAL])
     while len(X) < runs:
         q = min(BATCH, runs - len(X))
-        sur = st.fit(problem, X, Y, works, seed=seed)
+        sur = st.fit(problem, X, Y, works, kind=kind, seed=seed)
         X_new = suggest(sur, problem.limits, problem.goals, X, q, aim="window", confidence=CONFIDENCE,
                            seed=seed + len(X), tolerance=problem.spec.tolerances_coded).X
         Y_new, w_new = problem.run(X_new, seeds[len(X):len(X) + q])
@@ -103,25 +104,26 @@ def task(name: str, design: str, runs: int, seed: int, n_domain: int, variant: s
     """One case and seed: fit, calibration sums, window recall and precision, noise ratios.
 
     ``variant``: the GP hyperparameters (:data:`windowfinder.models.gp.HYPERPARAMETERS`), set for
-    every model this task fits (including those of the sequential design's suggestions)."""
-    gp.HYPERPARAMETERS = variant
+    every model this task fits (including those of the sequential design's suggestions), or ``"auto"``:
+    the mode, with every response's model chosen by ``kind="auto"``."""
+    gp.HYPERPARAMETERS = "map" if variant == "auto" else variant
     try:
-        out = _task(name, design, runs, seed, n_domain)
+        out = _task(name, design, runs, seed, n_domain, "auto" if variant == "auto" else "gp")
     finally:
         gp.HYPERPARAMETERS = DEFAULT_HYPERPARAMETERS
     out["variant"] = variant
     return out
 
 
-def _task(name, design, runs, seed, n_domain):
+def _task(name, design, runs, seed, n_domain, kind="gp"):
     t0 = time.perf_counter()
     problem = get_problem(name)
     if design == "sequential":
-        X, Y, works = sequential_design(problem, seed, runs)
+        X, Y, works = sequential_design(problem, seed, runs, kind)
     else:
         X = st.one_shot_design("space-filling", problem.d, runs, seed)
         Y, works = problem.run(X, st.run_seeds(seed, f"space-filling-{runs}", runs))
-    sur = st.fit(problem, X, Y, works, seed=seed)
+    sur = st.fit(problem, X, Y, works, kind=kind, seed=seed)
     out = {"problem": name, "design": design, "seed": seed, "runs": runs, "found": False, "volume": 0.0,
            "run_precision": np.nan}
     feas = Feasibility(problem.limits, sur, X)
@@ -134,10 +136,11 @@ def _task(name, design, runs, seed, n_domain):
     out["limit_bins"] = sum(_bin_sums(p_each[works, k], t_each[works, k]) for k in range(p_each.shape[1]))
     sure = t_joint >= CONFIDENCE
     out["claim_where_true"] = float(p_joint[sure].mean()) if sure.any() else np.nan
+    out["chosen"] = " ".join(sur.choices[r.name].chosen for r in problem.spec.responses)
     for r in problem.spec.responses:
         true = true_latent_sd(problem, r.name)
-        if true is not None:
-            out[f"noise:{r.name}"] = sur.models[r.name].noise_std_ / true
+        if true is not None and sur.choices[r.name].chosen in ("gp", "quadratic", "linear", "reduced"):
+            out[f"noise:{r.name}"] = sur.models[r.name].noise_std_ / true   # same latent scale as the truth
     w = find_window(feas.joint, problem.d, CONFIDENCE, tolerance=problem.spec.tolerances_coded, seed=seed)
     if w.found:
         out.update(found=True, volume=float(w.volume), run_precision=box_precision(
@@ -202,6 +205,51 @@ def _case_rows(df) -> tuple[list, list]:
     return recall_rows, by_case
 
 
+RECALL_HEAD = ["problem", "design", "factors", "runs", "perfect window", "windows found", "median recall",
+               "target", "run-level precision >= 0.95", "mean claim where true P >= 0.95",
+               "fitted / true noise sd (median)"]
+BIN_HEAD = ["claimed P", "points", "mean claim", "mean true P", f"within {BIN_TOLERANCE}"]
+CASE_HEAD = ["case"] + [f"{BINS[b]:.2f}-{min(BINS[b + 1], 1.0):.2f}" for b in range(len(BINS) - 1)]
+
+
+def honest_share(frame) -> float:
+    """Share of the claimed windows whose run-level precision meets the target."""
+    found = frame[frame.found.astype(bool)]
+    return float((found.run_precision >= PRECISION_TARGET).mean()) if len(found) else float("nan")
+
+
+def _chosen_rows(frame) -> list:
+    """Per case: how often each response got each model (the auto variant)."""
+    rows = []
+    for (name, design), g in frame.groupby(["problem", "design"], sort=False):
+        responses = [r.name for r in get_problem(name).spec.responses]
+        picks = [c.split() for c in g.chosen]
+        cells = []
+        for k, r in enumerate(responses):
+            counts = pd.Series([p[k] for p in picks]).value_counts()
+            cells.append(f"{r}: " + ", ".join(f"{m} {c}" for m, c in counts.items()))
+        rows.append([name, design, "; ".join(cells)])
+    return rows
+
+
+def _variant_parts(frame, title: str, short: str, intro: str) -> list:
+    """Markdown lines of one further variant: recall table, pooled and per-case calibration."""
+    if not len(frame):
+        return []
+    recall, by_case = _case_rows(frame)
+    dev = frame[~frame.problem.isin(HELD_OUT)]
+    rows, ok = calibration_rows(sum(dev.joint_bins))
+    held = frame[frame.problem.isin(HELD_OUT)]
+    held_text = (f"; held out: {_fmt(100 * honest_share(held), 0)} %" if len(held) else "")
+    chosen = ["", "Models chosen (response: model and seeds):", "",
+              _table(["problem", "design", "chosen"], _chosen_rows(frame))] if "chosen" in frame else []
+    return ["", f"### {title}", "", intro, "", _table(RECALL_HEAD, recall), "",
+            f"Run-level precision >= 0.95 in {_fmt(100 * honest_share(dev), 0)} % of claimed windows, "
+            f"held-out problems aside{held_text}. Joint probability, pooled as above "
+            f"({'all bins met' if ok else 'some bins missed'}):", "",
+            _table(BIN_HEAD, rows), "", f"By case ({short}):", "", _table(CASE_HEAD, by_case), *chosen]
+
+
 def main(quick: bool = False) -> str:
     cfg = QUICK if quick else FULL
     t0 = time.perf_counter()
@@ -210,46 +258,26 @@ def main(quick: bool = False) -> str:
     everything = df
     df = everything[everything.variant == "map"]
     recall_rows, by_case = _case_rows(df)
-    marginal = everything[everything.variant == "marginal"]
-    m_recall, m_by_case = _case_rows(marginal)
-    head = ["claimed P", "points", "mean claim", "mean true P", f"within {BIN_TOLERANCE}"]
+    head, recall_head, case_head = BIN_HEAD, RECALL_HEAD, CASE_HEAD
     held = df.problem.isin(HELD_OUT)
     dev = df[~held]
-
-    def honest_share(frame):
-        found = frame[frame.found.astype(bool)]
-        return float((found.run_precision >= PRECISION_TARGET).mean()) if len(found) else float("nan")
 
     share, held_share = honest_share(dev), honest_share(df[held])
     joint_rows, joint_ok = calibration_rows(sum(dev.joint_bins))
     limit_rows, limit_ok = calibration_rows(sum(dev.limit_bins))
-    recall_head = ["problem", "design", "factors", "runs", "perfect window", "windows found", "median recall",
-                   "target", "run-level precision >= 0.95", "mean claim where true P >= 0.95",
-                   "fitted / true noise sd (median)"]
-    case_head = ["case"] + [f"{BINS[b]:.2f}-{min(BINS[b + 1], 1.0):.2f}" for b in range(len(BINS) - 1)]
-    marginal_parts = []
-    if len(marginal):
-        m_dev = marginal[~marginal.problem.isin(HELD_OUT)]
-        m_rows, m_ok = calibration_rows(sum(m_dev.joint_bins))
-        marginal_parts = [
-            "",
-            "### The same cases with the mixture over the hyperparameters' posterior",
-            "",
-            "`GPModel(hyperparameters=\"marginal\")` (windowfinder.models.marginal: Laplace proposal, "
-            "sampling importance resampling, 16 draws, moment-matched mixture); same designs, runs and "
-            "seeds. Fitted noise sd: the root of the posterior mean noise variance.",
-            "",
-            _table(recall_head, m_recall),
-            "",
-            f"Run-level precision >= 0.95 in {_fmt(100 * honest_share(m_dev), 0)} % of claimed windows, "
-            "held-out problems aside. Joint probability, pooled as above "
-            f"({'all bins met' if m_ok else 'some bins missed'}):",
-            "",
-            _table(head, m_rows),
-            "",
-            "By case (mixture):",
-            "",
-            _table(case_head, m_by_case)]
+    marginal_parts = _variant_parts(
+        everything[everything.variant == "marginal"],
+        "The same cases with the mixture over the hyperparameters' posterior", "mixture",
+        "`GPModel(hyperparameters=\"marginal\")` (windowfinder.models.marginal: Laplace proposal, "
+        "sampling importance resampling, 16 draws, moment-matched mixture); same designs, runs and "
+        "seeds. Fitted noise sd: the root of the posterior mean noise variance.")
+    auto_parts = _variant_parts(
+        everything[everything.variant == "auto"],
+        "The same cases with each response's model chosen by leave-one-out (model = \"auto\")", "auto",
+        "`kind=\"auto\"` (windowfinder.models.choice: GP, warped GP, full or reduced quadratic by "
+        "leave-one-out log density in natural units; hyperparameters at their mode); same designs, runs "
+        "and seeds. Fitted noise sd only where the chosen model's latent scale is the truth's (not for "
+        "warped GPs).")
     held_parts = []
     if held.any():
         held_rows, held_ok = calibration_rows(sum(df[held].joint_bins))
@@ -272,7 +300,8 @@ def main(quick: bool = False) -> str:
         + (f", and studies that grow ({INITIAL} space-filling runs, then batches of {BATCH} suggested with "
            "aim window)" if any(c[1] == "sequential" for c in cfg["cases"]) else "")
         + f", {len(cfg['seeds'])} seeds per case; windowfinder's GP models (default: hyperparameters at "
-        "their posterior mode; below, the same cases with the mixture over their posterior); "
+        "their posterior mode; below, the same cases with the mixture over their posterior and with each "
+        "response's model chosen by leave-one-out); "
         f"claims at {cfg['n_domain']} Sobol points over the domain per seed against the true probability "
         "that a new run meets every limit (truth + the simulator's own noise); the 95 % window against the "
         "perfect-model window (largest box, guard box included, where that true probability is >= 0.95; "
@@ -300,6 +329,7 @@ def main(quick: bool = False) -> str:
         "",
         _table(case_head, by_case),
         *marginal_parts,
+        *auto_parts,
     ]
     text = "\n".join(parts) + "\n"
     say(text)

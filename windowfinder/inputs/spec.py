@@ -22,7 +22,7 @@ from windowfinder.inputs.storage import read_bytes, readable_file
 GOALS = ("maximize", "minimize", "target", "none")
 KINDS = ("quality", "safety")
 TRANSFORMS = ("none", "log", "logit")
-MODELS = ("auto", "gp", "quadratic", "linear")  # response models (windowfinder.models.choice)
+MODELS = ("auto", "gp", "warped", "quadratic", "linear")  # response models (windowfinder.models.choice)
 
 # Largest magnitude accepted for a number in the study file: far beyond any physical quantity in sensible
 # units, and small enough that squares and differences of such numbers stay finite in float64

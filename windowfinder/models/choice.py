@@ -1,22 +1,30 @@
-"""The model each response deserves: Gaussian process or polynomial, chosen by leave-one-out.
+"""The model each response deserves: Gaussian process, warped GP or polynomial, chosen by leave-one-out.
 
 ``model = "auto"`` (a response's default in study.toml) fits the candidates below and keeps the one
-whose leave-one-out predictive log density, on the model's latent scale, is highest; the Gaussian
-process is kept unless a polynomial strictly beats it:
+whose leave-one-out predictive log density of the measured values, in natural units, is highest; the
+Gaussian process is kept unless another candidate strictly beats it:
 
 - ``gp``: the Gaussian-process model; Gaussian LOO predictive at fixed hyperparameters (Rasmussen &
   Williams 2006, §5.4.2, eq. 5.10);
+- ``warped``: the Gaussian process of a fitted monotone warp of the response
+  (:class:`~windowfinder.models.warping.WarpedGPModel`; Snelson, Rasmussen & Ghahramani 2004); its two
+  warp parameters are fitted on all runs and held fixed in its LOO, so it must beat the others by
+  :data:`EXTRA_PARAMETERS` nats, one per warp parameter (Akaike's penalty, Akaike 1974, "A new look at
+  the statistical model identification", IEEE Trans. Autom. Control 19(6));
 - ``quadratic``: the full second-order polynomial;
 - ``reduced``: that polynomial after hierarchical backward elimination by AICc
   (:func:`~windowfinder.models.polynomial.backward_eliminate`); kept as a candidate only when it drops a
   term.
 
-A polynomial's LOO predictive is a Student t with ``n - p - 1`` degrees of freedom around the PRESS
-prediction (Cook & Weisberg 1982, §2.2). Both LOO scores hold the fitted structure fixed (the GP's
-hyperparameters, the polynomial's selected terms), so both are somewhat optimistic; the comparison is
-like with like. A polynomial that cannot be fitted (too few runs, too few levels) or leaves a run
-unpredictable (leverage 1), or with fewer than 2 residual degrees of freedom, is not a candidate.
-When the second-order model cannot be fitted, the first-order one takes its place.
+Natural units make candidates on different latent scales comparable: a latent density ``p_z`` at
+``z = g(y)`` is the density ``p_z(g(y)) g'(y)`` of ``y`` (change of variables), so the score adds
+``-sum log(dy/dz)`` at the runs to the latent one; for candidates sharing one transform it is the same
+constant. A polynomial's LOO predictive is a Student t with ``n - p - 1`` degrees of freedom around the
+PRESS prediction (Cook & Weisberg 1982, §2.2). The LOO scores hold the fitted structure fixed (the GP's
+hyperparameters, the warp, the polynomial's selected terms), so all are somewhat optimistic; the
+comparison is like with like. A polynomial that cannot be fitted (too few runs, too few levels) or
+leaves a run unpredictable (leverage 1), or with fewer than 2 residual degrees of freedom, is not a
+candidate. When the second-order model cannot be fitted, the first-order one takes its place.
 """
 
 from __future__ import annotations
@@ -32,13 +40,19 @@ from windowfinder.models.blocks import fit_blocked
 from windowfinder.models.encoding import LevelEncoder
 from windowfinder.models.gp import GPModel
 from windowfinder.models.polynomial import PolynomialModel, backward_eliminate
+from windowfinder.models.warping import WarpedGPModel
+
+# Parameters a candidate fits beyond the plain GP's, each costing one nat of LOO log density in ``auto``
+EXTRA_PARAMETERS = {"warped": 2.0}
 
 
 def loo_log_density(model) -> float:
-    """Sum over the runs of the leave-one-out predictive log density, latent scale.
+    """Sum over the runs of the leave-one-out predictive log density of the measured values, natural units.
 
-    Normal for a model without ``loo_dof`` (the GP); Student t with ``model.loo_dof`` degrees of freedom
-    for least squares. NaN when some run cannot be predicted from the others.
+    Normal on the latent scale for a model without ``loo_dof`` (the GP); Student t with
+    ``model.loo_dof`` degrees of freedom for least squares; the change of variables to natural units
+    subtracts ``log(dy/dz)`` at each run (module notes). NaN when some run cannot be predicted from the
+    others.
     """
     mu, sd = model.loo()
     z = model.z_train_
@@ -46,7 +60,8 @@ def loo_log_density(model) -> float:
         return float("nan")
     dof = getattr(model, "loo_dof", None)
     dist = stats.norm if dof is None else stats.t(dof)
-    return float(np.sum(dist.logpdf((z - mu) / sd) - np.log(sd)))
+    jacobian = np.sum(np.log(model.transform_.inverse_slope(z)))
+    return float(np.sum(dist.logpdf((z - mu) / sd) - np.log(sd)) - jacobian)
 
 
 @dataclass
@@ -55,11 +70,11 @@ class ModelChoice:
 
     Attributes
     ----------
-    requested : {"auto", "gp", "quadratic", "linear"}
+    requested : {"auto", "gp", "warped", "quadratic", "linear"}
     chosen : str
-        ``gp``, ``quadratic``, ``linear`` or ``reduced``.
+        ``gp``, ``warped``, ``quadratic``, ``linear`` or ``reduced``.
     scores : dict[str, float or None]
-        Candidate -> LOO log density (latent scale, summed over runs); None where it could not be
+        Candidate -> LOO log density (natural units, summed over runs); None where it could not be
         computed.
     notes : list[str]
         Why a candidate was left out.
@@ -126,19 +141,20 @@ def _candidates_polynomial(X, y, transform, notes, enc=None):
     return out
 
 
-def _gp(X, y, transform, n_restarts, seed, enc=None):
-    """Gaussian process on the one-hot columns of ``X``."""
-    return GPModel(transform=transform, n_restarts=n_restarts, random_state=seed).fit(
+def _gp(X, y, transform, n_restarts, seed, enc=None, cls=GPModel):
+    """Gaussian process (``cls``: plain or warped) on the one-hot columns of ``X``."""
+    return cls(transform=transform, n_restarts=n_restarts, random_state=seed).fit(
         LevelEncoder.of(enc).transform(X, "onehot"), y)
 
 
 def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None, categorical=()):
-    """The fitted candidates of ``model = "auto"``: ``{"gp": ..., "quadratic" | "linear": ...,
-    "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``).
+    """The fitted candidates of ``model = "auto"``: ``{"gp": ..., "warped": ..., "quadratic" | "linear":
+    ..., "reduced": ...}`` (polynomials only where they can be fitted and scored; reasons go to ``notes``).
     Fitted on the encoded columns (:class:`~windowfinder.models.encoding.LevelEncoder`), not wrapped."""
     notes = [] if notes is None else notes
     enc = LevelEncoder.of(categorical)
-    out = {"gp": _gp(X, y, transform, n_restarts, seed, enc)}
+    out = {"gp": _gp(X, y, transform, n_restarts, seed, enc),
+           "warped": _gp(X, y, transform, n_restarts, seed, enc, WarpedGPModel)}
     out.update(_candidates_polynomial(X, y, transform, notes, enc))
     return out
 
@@ -156,7 +172,7 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     ----------
     X : ndarray (n, d), coded
     y : ndarray (n,), natural units, all finite
-    model : {"auto", "gp", "quadratic", "linear"}
+    model : {"auto", "gp", "warped", "quadratic", "linear"}
     transform : str or Transform
     n_restarts, seed : int
         For the Gaussian process.
@@ -187,9 +203,9 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
                         enc.transform(X, "onehot"), y, blocks)
         return _choice(model, "gp", m, {"gp": loo_log_density(m)},
                        ["runs in blocks: the Gaussian process with a random offset per block"], enc, X)
-    if model == "gp":
-        m = _gp(X, y, transform, n_restarts, seed, enc)
-        return _choice(model, "gp", m, {"gp": loo_log_density(m)}, (), enc, X)
+    if model in ("gp", "warped"):
+        m = _gp(X, y, transform, n_restarts, seed, enc, GPModel if model == "gp" else WarpedGPModel)
+        return _choice(model, model, m, {model: loo_log_density(m)}, (), enc, X)
     if model in ("quadratic", "linear"):
         m = _polynomial(X, y, transform, degree=2 if model == "quadratic" else 1, enc=enc)
         return _choice(model, model, m, {model: loo_log_density(m)}, (), enc, X)
@@ -197,7 +213,8 @@ def fit_response(X, y, model="auto", transform="none", n_restarts=5, seed=0, blo
     scores = {k: loo_log_density(m) for k, m in cands.items()}
     best = "gp"
     for k, s in scores.items():
-        if s > scores[best] or (np.isfinite(s) and not np.isfinite(scores[best])):
+        s_adj, best_adj = s - EXTRA_PARAMETERS.get(k, 0.0), scores[best] - EXTRA_PARAMETERS.get(best, 0.0)
+        if s_adj > best_adj or (np.isfinite(s) and not np.isfinite(scores[best])):
             best = k
     for k, s in scores.items():
         if not np.isfinite(s):

@@ -207,7 +207,7 @@ class GPModel(_ResponseModel):
         n = X.shape[0]
         if n < 2:
             raise InputError(f"a Gaussian-process model needs at least 2 measured runs, got {n}")
-        self.transform_ = _as_transform(self.transform, self.bounds)
+        self.transform_ = self._fit_transform(X, y)
         z, self.at_bound_ = self.transform_.measured(y)  # values at a bound kept
         self.y_mean_ = float(np.mean(z))
         spread = float(np.ptp(z))  # std of z / ptp, times ptp: responses near 1e-300 do not underflow
@@ -242,6 +242,10 @@ class GPModel(_ResponseModel):
         self._thetas = self._hyper_draws(X, ys, gp)
         self._store(gp, X, z)
         return self
+
+    def _fit_transform(self, X, y):
+        """The output transform of this fit: the study file's (a warped model fits its own)."""
+        return _as_transform(self.transform, self.bounds)
 
     def _hyper_draws(self, X, ys, gp):
         """Log hyperparameters and weights of the mixture components (the mode alone for ``"map"``)."""

@@ -131,6 +131,7 @@ class Transform:
 
 
 def _as_transform(transform, bounds):
-    return transform if isinstance(transform, Transform) else Transform(transform, bounds)
+    """A ``Transform`` (or an object with its interface, such as a fitted warp) from a kind and bounds."""
+    return transform if hasattr(transform, "forward_limit") else Transform(transform, bounds)
 
 
