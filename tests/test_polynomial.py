@@ -24,7 +24,7 @@ from scipy import stats
 
 from windowfinder.answers.feasibility import Feasibility, limit_probability
 from windowfinder.errors import InputError
-from windowfinder.models.choice import ModelChoice, fit_response, loo_log_density
+from windowfinder.models.choice import EXTRA_PARAMETERS, ModelChoice, fit_response, loo_log_density
 from windowfinder.models.polynomial import (PolynomialModel, backward_eliminate, full_terms,
                                             information_criterion)
 from windowfinder.models.surrogates import Surrogates
@@ -196,13 +196,14 @@ def test_limit_probability_with_dof_and_feasibility_uses_it(ccd):
     assert np.all(np.abs(p - 0.5) < np.abs(p_normal - 0.5))   # t tails: less certain than the normal
 
 
-# 6. The choice: auto keeps the highest LOO log density (the GP on ties); explicit settings are obeyed.
+# 6. The choice: auto keeps the highest LOO log density (the GP on ties, the warped GP penalised); explicit settings are obeyed.
 def test_auto_choice_is_the_argmax_of_the_scores(ccd):
     U, _, d = ccd
     for name in ("yield", "viscosity", "mw"):
         m, c = fit_response(U, d[name].to_numpy(), "auto", n_restarts=2, seed=0)
         assert set(c.scores) >= {"gp", "quadratic"}
-        best = max(c.scores, key=lambda k: (c.scores[k], k == "gp"))
+        # the warped GP pays one nat per warp parameter (windowfinder.models.choice.EXTRA_PARAMETERS)
+        best = max(c.scores, key=lambda k: (c.scores[k] - EXTRA_PARAMETERS.get(k, 0.0), k == "gp"))
         assert c.chosen == best and math.isclose(loo_log_density(m), c.scores[best], rel_tol=1e-12)
         assert ModelChoice.from_dict(c.to_dict()).text() == c.text()
     m, c = fit_response(U, d["mw"].to_numpy(), "linear")
@@ -218,6 +219,8 @@ def test_unknown_model_and_too_few_runs_are_input_errors(ccd):
     # auto, 6 runs: too few for the quadratic (6 terms + 1), so the first-order model takes its place
     m, c = fit_response(U[:6], d["mw"].to_numpy()[:6], "auto", n_restarts=1)
     assert "quadratic" not in c.scores and "linear" in c.scores and c.notes[0].startswith("quadratic")
-    # 4 runs: the first-order model would keep 1 residual dof (its LOO needs 2): the GP alone
+    # 4 runs: the first-order model would keep 1 residual dof (its LOO needs 2), and a warp needs
+    # 2 runs per parameter: the GP alone
     m, c = fit_response(U[:4], d["mw"].to_numpy()[:4], "auto", n_restarts=1)
-    assert list(c.scores) == ["gp"] and c.chosen == "gp" and len(c.notes) == 2
+    assert list(c.scores) == ["gp"] and c.chosen == "gp" and len(c.notes) == 3
+    assert any(n.startswith("warped: 4 runs") for n in c.notes)

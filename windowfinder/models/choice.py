@@ -44,6 +44,9 @@ from windowfinder.models.warping import WarpedGPModel
 
 # Parameters a candidate fits beyond the plain GP's, each costing one nat of LOO log density in ``auto``
 EXTRA_PARAMETERS = {"warped": 2.0}
+# The warped GP is a candidate from this many runs per parameter (the GP's d + 3 and the warp's 2), as
+# for the hyperparameter mixture (windowfinder.models.gp); common practice, no source
+WARP_MIN_RUNS_PER_PARAMETER = 2
 
 
 def loo_log_density(model) -> float:
@@ -153,9 +156,13 @@ def candidates(X, y, transform="none", n_restarts=5, seed=0, notes=None, categor
     Fitted on the encoded columns (:class:`~windowfinder.models.encoding.LevelEncoder`), not wrapped."""
     notes = [] if notes is None else notes
     enc = LevelEncoder.of(categorical)
-    out = {"gp": _gp(X, y, transform, n_restarts, seed, enc),
-           "warped": _gp(X, y, transform, n_restarts, seed, enc, WarpedGPModel)}
+    out = {"gp": _gp(X, y, transform, n_restarts, seed, enc)}
     out.update(_candidates_polynomial(X, y, transform, notes, enc))
+    need = WARP_MIN_RUNS_PER_PARAMETER * (out["gp"].X_train_.shape[1] + 5)   # GP columns, one-hot
+    if len(y) >= need:
+        out["warped"] = _gp(X, y, transform, n_restarts, seed, enc, WarpedGPModel)
+    else:
+        notes.append(f"warped: {len(y)} runs; a fitted warp needs {need}")
     return out
 
 
