@@ -1,8 +1,8 @@
 """The model each response deserves: Gaussian processes only against ``model = "auto"``.
 
 On each bundled simulator: space-filling designs of two sizes per seed, the response models fitted as
-Gaussian processes only (the former default) and with ``kind="auto"`` (Gaussian process, full quadratic
-or AICc-reduced polynomial by leave-one-out log density, :mod:`windowfinder.models.choice`). Reported:
+Gaussian processes only (the former default) and with ``kind="auto"`` (Gaussian process, warped GP,
+full quadratic or AICc-reduced polynomial by leave-one-out log density, :mod:`windowfinder.models.choice`). Reported:
 which model auto chose, the held-out error of the models' means against the noise-free truth (RMSE over
 1024 Sobol points, as a share of the truth's sd), and the claimed 95 % window judged against the truth as
 in the sample-efficiency section. ``main(quick)`` returns the Markdown.
@@ -81,7 +81,8 @@ def main(quick: bool = False) -> str:
              "",
              f"Space-filling designs of {' and '.join(map(str, cfg['runs']))} runs, {len(cfg['seeds'])} seeds "
              "per simulator; every response fitted as a Gaussian process, and with the leave-one-out choice "
-             "between Gaussian process, full quadratic and AICc-reduced polynomial. Held-out error: RMSE of "
+             "between Gaussian process, warped Gaussian process, full quadratic and AICc-reduced polynomial. "
+             "Held-out error: RMSE of "
              "each model's mean against the noise-free truth on 1024 Sobol points, over the truth's sd, "
              "averaged over the responses. Windows: the claimed 95 % window judged as in the "
              "sample-efficiency section. "
