@@ -13,6 +13,7 @@ import numpy as np
 import pytest
 from scipy import integrate, stats
 
+import windowfinder.models.choice as choice
 import windowfinder.models.warping as warping
 from windowfinder.answers.feasibility import limit_probability
 from windowfinder.inputs.spec import MODELS
@@ -92,10 +93,15 @@ def test_loo_density_in_natural_units_is_the_change_of_variables():
     assert loo_log_density(w) == pytest.approx(np.sum(np.log((cdf[0] - cdf[1]) / (2 * h))), rel=1e-5)
 
 
-def test_fitted_warp_maximises_its_score_and_warped_is_a_model_choice():
+def test_fitted_warp_maximises_its_score_and_warped_is_a_model_choice(monkeypatch):
     X, y = _data()
     m, c = fit_response(X, y, "warped", n_restarts=1)
     assert "warped" in MODELS and c.chosen == "warped" and m.warp_ == max(m.warp_scores_, key=m.warp_scores_.get)
     assert len(m.warp_scores_) == len(warping.EPSILONS) * len(warping.DELTAS)
     _, auto = fit_response(X, y, "auto", n_restarts=1)
+    assert "warped" not in auto.scores            # an option: auto leaves it out by default
+    monkeypatch.setattr(choice, "AUTO_WARPED", True)
+    _, auto = fit_response(X, y, "auto", n_restarts=1)
     assert "warped" in auto.scores
+    _, few = fit_response(X[:13], y[:13], "auto", n_restarts=1)   # 2 (d + 5) = 14 runs needed in 2 factors
+    assert "warped" not in few.scores and any(n.startswith("warped: 13 runs") for n in few.notes)
