@@ -64,7 +64,8 @@ class ModelDiagnostics:
         when the model's stated uncertainty is right, above 1 when it is too sure, below 1 when too
         timid. NaN with fewer than two predictable runs.
     scale : str
-        The model's scale: ``"natural"`` (no transform), ``"log"`` or ``"logit"``.
+        The model's scale: ``"natural"`` (no transform), ``"log"``, ``"logit"`` or ``"warped"`` (a fitted
+        warp, :mod:`windowfinder.models.warping`).
     length_scales : dict[str, float]
         Gaussian-process length scale per factor in factor units (coded length * (high - low));
         empty for the quadratic model.

@@ -62,7 +62,8 @@ class WarpedTransform:
     """The study-file transform ``g`` followed by a sinh-arcsinh warp of its standardised value.
 
     Same interface as :class:`windowfinder.models.transform.Transform` (``forward``, ``measured``,
-    ``inverse``, ``inverse_slope``, ``forward_limit``, ``kind``, ``bounds``, ``lower``, ``upper``).
+    ``inverse``, ``inverse_slope``, ``forward_limit``, ``kind`` = ``"warped"``, ``bounds``, ``lower``,
+    ``upper``).
 
     Parameters
     ----------
@@ -77,7 +78,8 @@ class WarpedTransform:
         self.base = base
         self.center, self.scale = float(center), float(scale)
         self.epsilon, self.delta = float(epsilon), float(delta)
-        self.kind, self.bounds = base.kind, base.bounds
+        # the model's scale as diagnostics name it: "warped" (the study transform is in ``base.kind``)
+        self.kind, self.bounds = "warped", base.bounds
         self.lower, self.upper = base.lower, base.upper
 
     def __repr__(self):
