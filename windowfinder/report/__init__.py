@@ -17,10 +17,10 @@ from windowfinder.errors import InputError
 from windowfinder.inputs.storage import write_atomic
 from windowfinder.report import sections
 from windowfinder.report.figures import figure_png, influence_figure, loo_figure, tradeoff_figure
-from windowfinder.report.maps import (SliceGrid, draw_overlays, map_figure, map_pairs, margin_in_sd,
-                                     margin_map_figure, probability_map_figure, slice_centre,
-                                     slice_figure, slice_grid)
+from windowfinder.report.maps import (SliceGrid, map_figure, map_pairs, margin_in_sd, margin_map_figure,
+                                     probability_map_figure, slice_centre, slice_figure, slice_grid)
 from windowfinder.report.method import method_notes
+from windowfinder.report.overlays import draw_overlays
 from windowfinder.report.page import page
 
 SECTION_IDS = ("summary", "data", "models", "maps", "tradeoff", "influence", "next-runs", "method")
