@@ -174,7 +174,8 @@ def toy_evaluate(settings):
 def test_campaign_progress_volume_is_the_window_of_the_same_runs_in_percent(tmp_path):
     from windowfinder.answers.results import build_window
     from windowfinder.answers.window import volume_text
-    from windowfinder.campaign.loop import ModelProgress, run_campaign
+    from windowfinder.campaign.loop import run_campaign
+    from windowfinder.campaign.progress import ModelProgress
 
     d = make_study(tmp_path / "s", runs=12)
     tracker, lines = ModelProgress(), []

@@ -144,7 +144,7 @@ def reactor(tmp_path_factory):
 
 
 def test_one_volume_in_json_message_markdown_table_and_campaign_log(reactor):
-    from windowfinder.campaign.loop import ModelProgress
+    from windowfinder.campaign.progress import ModelProgress
 
     d, study, fit = reactor
     spec = study.spec

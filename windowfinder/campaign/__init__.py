@@ -1,5 +1,6 @@
 """Closed-loop campaigns: ``evaluators`` run one run (``commands``: an external program), ``engines`` say
-where (pools, Dask), ``ledger`` keeps runs.csv, ``loop`` runs it.
+where (pools, Dask), ``ledger`` keeps runs.csv, ``loop`` runs it, ``progress`` gives its figures after
+each batch.
 """
 
 from windowfinder.campaign.ledger import RunLedger, admissible  # noqa: F401
