@@ -286,7 +286,6 @@ class GPModel(_ResponseModel):
         stationary = k.k1.k1 if self.trend == "quadratic" else k.k1
         c = float(stationary.k1.constant_value)
         self.signal_std_ = self.y_scale_ * float(np.sqrt(c))
-        self.noise_std_ = self.y_scale_ * float(np.sqrt(k.k2.noise_level))
         self.length_scales_ = np.broadcast_to(np.asarray(stationary.k2.length_scale, float),
                                               (X.shape[1],)).copy()
         if self.nu in SUPPORTED_NU:
@@ -304,8 +303,7 @@ class GPModel(_ResponseModel):
                                                JITTER) or self.components_)
         self.noise_std_ = self.y_scale_ * float(np.sqrt(sum(c.weight * c.noise_var for c in self.components_)))
         if self.inducing_ is not None:
-            self.sparse_ = FITC(self._signal, self.inducing_, X, (z - self.y_mean_) / self.y_scale_,
-                                float(k.k2.noise_level) + JITTER)
+            self.sparse_ = FITC(self._signal, self.inducing_, X, ys, float(k.k2.noise_level) + JITTER)
 
     def _basis_size(self):
         return self.X_train_.shape[0] if self.sparse_ is None else self.inducing_.shape[0]
