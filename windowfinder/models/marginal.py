@@ -152,11 +152,14 @@ class Component:
 
 
 def mixture_moments(means, variances, weights):
-    """Mean and variance of the mixture ``sum_k w_k N(means[k], variances[k])`` (arrays (k, m))."""
+    """Mean and variance of the mixture ``sum_k w_k N(means[k], variances[k])`` (arrays (k, m)).
+
+    The variance is summed as ``sum_k w_k (v_k + (mu_k - mean)^2)``, equal to ``sum_k w_k (v_k + mu_k^2)
+    - mean^2`` but without its cancellation where the variances are small beside the squared means.
+    """
     w = np.asarray(weights, float)[:, None]
     mean = np.sum(w * means, axis=0)
-    second = np.sum(w * (variances + means ** 2), axis=0)
-    return mean, np.maximum(second - mean ** 2, 0.0)
+    return mean, np.sum(w * (variances + (means - mean) ** 2), axis=0)
 
 
 def fit_components(thetas, weights, X, ys, nu, trend, jitter):
