@@ -13,6 +13,7 @@ from dataclasses import asdict, dataclass, field
 
 import numpy as np
 import pandas as pd
+from scipy import stats
 
 from windowfinder.errors import InputError
 from windowfinder.models.gp import LENGTH_SCALE_BOUNDS, NOISE_BOUNDS
@@ -222,8 +223,6 @@ def loo_spread(model, mu, sd, ok):
     Returns ``(spread, low, high)``: ``sqrt(mean u^2)`` and the bounds of ``sqrt(chi2_n / n)`` at
     ``SPREAD_LEVEL / 2`` and ``1 - SPREAD_LEVEL / 2`` (scipy.stats.chi2), ``n`` the predictable runs.
     """
-    from scipy import stats
-
     z = np.asarray(model.z_train_, float)[ok]
     r = (z - np.asarray(mu, float)[ok]) / np.asarray(sd, float)[ok]
     dof = getattr(model, "loo_dof", None)
