@@ -178,7 +178,6 @@ def window_boxes(spec: StudySpec, factors: list[dict], guard: bool = False) -> l
     return out
 
 
-
 def allowed_combinations(spec: StudySpec, fixed: dict | None):
     """Level combinations of the categorical factors left by ``fixed`` ``{factor: level name}``; None
     when the study has no categorical factor."""
@@ -197,14 +196,12 @@ def allowed_combinations(spec: StudySpec, fixed: dict | None):
     return [c for c in spec.level_combinations() if all(c[k] == i for k, i in want.items())]
 
 
-
 def at_levels(spec: StudySpec, U, combo):
     """Coded settings ``U`` with the categorical columns set to a level combination."""
     U = np.array(np.atleast_2d(U), dtype=float)
     if spec.categorical:
         U[:, spec.categorical] = spec.level_codes(combo)
     return U
-
 
 
 def merge_ranges(per_level: list[list[dict]]) -> list[dict]:

@@ -203,8 +203,8 @@ def build_window(spec: StudySpec, fit, confidence: float | None = None, set_poin
                 "guard_low": float(f"{c:.12g}"), "guard_high": float(f"{e:.12g}"), "tolerance": f.tolerance}
                for j, (f, a, b, c, e) in enumerate(zip(spec.factors, lo_n, hi_n, glo_n, ghi_n))]
     glo, ghi = spec.to_coded(glo_n)[0], spec.to_coded(ghi_n)[0]
-    inside = np.vstack([at_levels(spec, glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512)
-                                   * (ghi - glo), c) for c in held])
+    in_guard = glo + qmc.Sobol(spec.d, scramble=True, seed=seed).random(512) * (ghi - glo)
+    inside = np.vstack([at_levels(spec, in_guard, c) for c in held])
     fmap = feas.evaluate(inside, max(confidence, 0.5 + 1e-9))
     share = float(fmap.untrusted.mean())
     extent = judge_extent(float(np.mean(fmap.distance > fmap.extrapolation_distance)),
