@@ -316,13 +316,12 @@ class Study(Planner):
         fit = self.fit() if fit is None else fit
         U = spec.to_coded(X).reshape(-1, spec.d)
         feas = feasibility_of(spec, fit, mean_only)
-        p_each, p_joint = feas.probabilities(U)
+        _, p_each, p_works, p_joint, _ = feas._chunks(U)   # P(works) as it enters p_joint, predicted once
         out = spec.labelled(frame[spec.factor_names].copy())
         for k, r in enumerate(spec.limited):
             out[f"p_{r.name}"] = p_each[:, k]
         out["p_all_limits"] = np.prod(p_each, axis=1)
-        failure = fit.surrogates.failure
-        out["p_works"] = np.ones(len(U)) if failure is None else np.ravel(failure.predict_proba(U))
+        out["p_works"] = np.ones(len(U)) if p_works is None else p_works
         out["p_joint"] = p_joint
         out["allowed"] = np.all((U >= -1e-12) & (U <= 1 + 1e-12), axis=1) & spec.linear.feasible(U)
         return out
