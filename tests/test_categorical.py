@@ -10,12 +10,13 @@ import pandas as pd
 import pytest
 from scipy.spatial.distance import cdist
 
-from windowfinder.cli import main
 from windowfinder.errors import InputError
 from windowfinder.inputs.designs import is_latin
 from windowfinder.inputs.runs import read_runs, write_runs
 from windowfinder.inputs.spec import StudySpec
 from windowfinder.study import Study
+
+from test_categorical_usage import _cli   # (code, stdout, stderr) of one command line
 
 HEAD = """\
 [study]
@@ -54,12 +55,6 @@ def _study(tmp_path, text, runs=None):
     if runs is not None:
         (d / "runs.csv").write_text(runs)
     return d
-
-
-def _cli(argv, capsys):
-    code = main([str(a) for a in argv])
-    out, err = capsys.readouterr()
-    return code, out, err
 
 
 # ------------------------------------------------------------------------------------------ parsing
