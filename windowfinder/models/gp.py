@@ -313,29 +313,15 @@ class GPModel(_ResponseModel):
         # sd excludes the white-noise term unless asked for; FITC above max_exact (windowfinder.models.sparse)
         if self.sparse_ is not None:
             mean, var = self.sparse_.moments(X, return_std)
-            mean = self.y_mean_ + self.y_scale_ * mean
-        elif len(self.components_) > 1:
-            return self._mixture_moments(X, return_std, noise)
-        else:
-            Ks = self._signal(X, self.X_train_)
-            mean = self.y_mean_ + self.y_scale_ * (Ks @ self.gp_.alpha_)
-            if return_std:
-                V = solve_triangular(self.gp_.L_, Ks.T, lower=True, check_finite=False)
-                var = np.maximum(self._signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
-        if not return_std:
-            return mean, None
-        var = var * self.y_scale_ ** 2
-        if noise:   # a future run: run-to-run noise, plus a new block's offset (windowfinder.models.blocks)
-            var = var + self.noise_std_ ** 2 + self.block_var_
-        return mean, np.sqrt(var)
-
-    def _mixture_moments(self, X, return_std, noise):
-        """Moment-matched mixture over the hyperparameter draws (:mod:`windowfinder.models.marginal`)."""
-        mean, var = mixture_predict(self.components_, self.X_train_, X, return_std, noise)
+        else:   # the mode alone, or the mixture over hyperparameter draws (windowfinder.models.marginal)
+            mean, var = mixture_predict(self.components_, self.X_train_, X, return_std)
         mean = self.y_mean_ + self.y_scale_ * mean
         if not return_std:
             return mean, None
-        return mean, np.sqrt(var * self.y_scale_ ** 2 + (self.block_var_ if noise else 0.0))
+        var = var * self.y_scale_ ** 2
+        if noise:   # a future run: run-to-run noise (mixture: its posterior mean), plus a new block's offset
+            var = var + self.noise_std_ ** 2 + self.block_var_
+        return mean, np.sqrt(var)
 
     def cross_covariance(self, A, B, white_a=None):
         """Posterior covariance of the latent mean between ``A`` (m, d) and ``B`` (k, d), (m, k).

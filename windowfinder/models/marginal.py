@@ -182,10 +182,10 @@ def fit_components(thetas, weights, X, ys, nu, trend, jitter):
     return comps
 
 
-def mixture_predict(comps, X_train, X, return_std, noise):
-    """Standardised mean and variance of the mixture at ``X`` (R&W 2006, eqs. 2.25-2.26 per component);
-    ``noise`` adds each component's own noise variance before mixing. Variance None without
-    ``return_std``."""
+def mixture_predict(comps, X_train, X, return_std):
+    """Standardised mean and latent variance of the mixture at ``X`` (R&W 2006, eqs. 2.25-2.26 per
+    component), noise excluded: each component's noise variance added before mixing would add their
+    weighted mean, ``sum_k w_k s2_k``, to the mixture's variance. Variance None without ``return_std``."""
     means = np.empty((len(comps), X.shape[0]))
     vars_ = np.zeros_like(means)
     for i, c in enumerate(comps):
@@ -194,8 +194,6 @@ def mixture_predict(comps, X_train, X, return_std, noise):
         if return_std:
             V = solve_triangular(c.L, Ks.T, lower=True, check_finite=False)
             vars_[i] = np.maximum(c.signal.diag(X) - np.einsum("ij,ij->j", V, V), 0.0)
-            if noise:
-                vars_[i] += c.noise_var
     mean, var = mixture_moments(means, vars_, [c.weight for c in comps])
     return mean, (var if return_std else None)
 
